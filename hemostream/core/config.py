@@ -1,0 +1,127 @@
+"""Configuration models (pure data; loading from TOML lives in :mod:`hemostream.config`).
+
+Every number has a default; a TOML file only needs what it changes. Unknown keys are errors,
+so a misspelt option is reported instead of silently ignored.
+"""
+
+from __future__ import annotations
+
+from typing import Annotated, Literal
+
+from pydantic import BaseModel, ConfigDict, Field, model_validator
+
+from .wire import ID_RE, PARAMS
+
+_STRICT = ConfigDict(extra="forbid")
+
+
+class Bounds(BaseModel):
+    """Physically plausible range of a parameter in its canonical unit (inclusive)."""
+
+    model_config = _STRICT
+    low: float
+    high: float
+
+    @model_validator(mode="after")
+    def _ordered(self) -> "Bounds":
+        if self.low >= self.high:
+            raise ValueError(f"low ({self.low}) must be below high ({self.high})")
+        return self
+
+
+# Plausibility: values outside are physically impossible or a device fault, and are rejected
+# (never clamped). Wide on purpose: they catch garbage, not illness (common practice).
+DEFAULT_PLAUSIBLE: dict[str, tuple[float, float]] = {
+    "HR": (0, 350), "PR": (0, 350),
+    "ABP_SYS": (-20, 350), "ABP_DIA": (-20, 300), "ABP_MEAN": (-20, 300),
+    "NIBP_SYS": (0, 350), "NIBP_DIA": (0, 300), "NIBP_MEAN": (0, 300),
+    "CVP": (-20, 80), "PAP_SYS": (-20, 150), "PAP_DIA": (-20, 120), "PAP_MEAN": (-20, 130),
+    "PAWP": (-20, 80), "CO": (0, 30), "SV": (0, 300), "SPO2": (0, 100), "RR": (0, 150),
+    "TEMP": (15, 45),
+}
+
+# How old an input may be and still count as current for derivations (seconds).
+# Continuous channels: seconds; intermittent ones (cuff, wedge, thermodilution CO): minutes.
+DEFAULT_MAX_AGE: dict[str, float] = {
+    "HR": 10, "PR": 10, "ABP_SYS": 10, "ABP_DIA": 10, "ABP_MEAN": 10,
+    "NIBP_SYS": 900, "NIBP_DIA": 900, "NIBP_MEAN": 900,
+    "CVP": 30, "PAP_SYS": 10, "PAP_DIA": 10, "PAP_MEAN": 10, "PAWP": 1800,
+    "CO": 900, "SV": 10, "SPO2": 30, "RR": 30, "TEMP": 300,
+}
+
+
+class IngestConfig(BaseModel):
+    model_config = _STRICT
+    max_payload_bytes: Annotated[int, Field(gt=0)] = 256 * 1024
+    stored_raw_bytes: Annotated[int, Field(gt=0)] = 64 * 1024
+    max_clock_skew_s: Annotated[float, Field(ge=0)] = 300.0
+    #: messages older than the bed's newest by more than this are stored, flagged late and
+    #: not fed to derivations; within it they are handled in measurement order
+    late_after_s: Annotated[float, Field(ge=0)] = 30.0
+    #: per device, how many recent message identities are remembered to drop duplicates
+    dedup_per_device: Annotated[int, Field(ge=16)] = 512
+    plausible: dict[str, Bounds] = Field(
+        default_factory=lambda: {p: Bounds(low=lo, high=hi)
+                                 for p, (lo, hi) in DEFAULT_PLAUSIBLE.items()})
+
+    @model_validator(mode="after")
+    def _complete(self) -> "IngestConfig":
+        unknown = sorted(set(self.plausible) - set(PARAMS))
+        if unknown:
+            raise ValueError(f"plausible: unknown parameter(s) {unknown}")
+        merged = {p: Bounds(low=lo, high=hi) for p, (lo, hi) in DEFAULT_PLAUSIBLE.items()}
+        merged.update(self.plausible)
+        object.__setattr__(self, "plausible", merged)
+        return self
+
+
+class DeriveConfig(BaseModel):
+    model_config = _STRICT
+    bsa_formula: Literal["mosteller", "dubois"] = "mosteller"
+    max_age_s: dict[str, Annotated[float, Field(gt=0)]] = Field(
+        default_factory=lambda: dict(DEFAULT_MAX_AGE))
+
+    @model_validator(mode="after")
+    def _complete(self) -> "DeriveConfig":
+        unknown = sorted(set(self.max_age_s) - set(PARAMS))
+        if unknown:
+            raise ValueError(f"max_age_s: unknown parameter(s) {unknown}")
+        merged = dict(DEFAULT_MAX_AGE)
+        merged.update(self.max_age_s)
+        object.__setattr__(self, "max_age_s", merged)
+        return self
+
+
+class StoreConfig(BaseModel):
+    model_config = _STRICT
+    url: str = "sqlite:///hemostream.db"
+    #: derived values are recomputable from the stored observations, so each (bed, value)
+    #: is stored when it first appears, when it moved by more than `derived_deadband`
+    #: (relative) since the last stored one, or at least every `derived_every_s` seconds.
+    derived_every_s: Annotated[float, Field(ge=0)] = 30.0
+    derived_deadband: Annotated[float, Field(ge=0)] = 0.02
+    batch_rows: Annotated[int, Field(gt=0)] = 20000
+
+
+class UnitConfig(BaseModel):
+    model_config = _STRICT
+    id: str
+    name: str = ""
+    beds: list[str] = Field(default_factory=list)
+
+    @model_validator(mode="after")
+    def _ids(self) -> "UnitConfig":
+        for x in [self.id, *self.beds]:
+            if not ID_RE.match(x):
+                raise ValueError(f"{x!r} must be 1-32 characters of A-Z a-z 0-9 - _")
+        return self
+
+
+class Config(BaseModel):
+    model_config = _STRICT
+    instance: str = "hemostream-1"
+    #: units this instance serves; empty means every unit seen
+    units: list[UnitConfig] = Field(default_factory=list)
+    ingest: IngestConfig = Field(default_factory=IngestConfig)
+    derive: DeriveConfig = Field(default_factory=DeriveConfig)
+    store: StoreConfig = Field(default_factory=StoreConfig)

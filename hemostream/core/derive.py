@@ -1,0 +1,273 @@
+"""Derived hemodynamic values: one small function per formula, and their evaluation per bed.
+
+Each function states its formula, units in and out and its source, with one worked example.
+Units follow UCUM: pressures mm[Hg], flows L/min, volumes mL, rates /min, areas m2.
+:func:`derive_all` evaluates every formula whose inputs are current and records the inputs
+(parameter and measurement time) it used; missing inputs mean no value, never a guess.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Callable, NamedTuple
+
+from .units import MMHG_MIN_PER_L_IN_DYN_S_CM5, MMHG_ML_IN_GF_M
+
+#: canonical UCUM unit of every derived value
+DERIVED_UNITS: dict[str, str] = {
+    "MAP": "mm[Hg]", "PP": "mm[Hg]", "SV": "mL", "CO": "L/min", "BSA": "m2",
+    "CI": "L/min/m2", "SVI": "mL/m2", "SVR": "dyn.s/cm5", "SVRI": "dyn.s.m2/cm5",
+    "PVR": "dyn.s/cm5", "LVSWI": "g.m/m2", "RVSWI": "g.m/m2", "SI": "1", "MSI": "1",
+}
+
+
+def mean_pressure(sys: float, dia: float) -> float:
+    """Estimated mean pressure from systolic and diastolic: DIA + (SYS - DIA) / 3 (mm[Hg]).
+
+    Common practice (one-third pulse-pressure rule, critical care texts).
+
+    >>> mean_pressure(120, 80)
+    93.33333333333333
+    """
+    return dia + (sys - dia) / 3.0
+
+
+def pulse_pressure(sys: float, dia: float) -> float:
+    """PP = SYS - DIA (mm[Hg]). Common practice.
+
+    >>> pulse_pressure(121, 68)
+    53
+    """
+    return sys - dia
+
+
+def stroke_volume(co_l_min: float, hr_min: float) -> float:
+    """SV (mL) = CO (L/min) x 1000 / HR (/min); the definition CO = HR x SV, rearranged.
+
+    >>> stroke_volume(5.0, 70)
+    71.42857142857143
+    """
+    return co_l_min * 1000.0 / hr_min
+
+
+def cardiac_output(hr_min: float, sv_ml: float) -> float:
+    """CO (L/min) = HR (/min) x SV (mL) / 1000. Textbook definition (Guyton and Hall).
+
+    >>> cardiac_output(70, 70)
+    4.9
+    """
+    return hr_min * sv_ml / 1000.0
+
+
+def bsa_mosteller(height_cm: float, weight_kg: float) -> float:
+    """Body surface area (m2) = sqrt(height_cm x weight_kg / 3600).
+
+    Mosteller RD, N Engl J Med 1987;317:1098 (worked check there: 180 cm, 80 kg -> 2.00 m2).
+
+    >>> round(bsa_mosteller(180, 80), 2)
+    2.0
+    """
+    return math.sqrt(height_cm * weight_kg / 3600.0)
+
+
+def bsa_dubois(height_cm: float, weight_kg: float) -> float:
+    """Body surface area (m2) = 0.007184 x W^0.425 x H^0.725.
+
+    Du Bois D, Du Bois EF, Arch Intern Med 1916;17:863.
+
+    >>> round(bsa_dubois(180, 80), 2)
+    2.0
+    """
+    return 0.007184 * weight_kg ** 0.425 * height_cm ** 0.725
+
+
+def indexed(value: float, bsa_m2: float) -> float:
+    """A value per m2 of body surface: CI = CO / BSA (L/min/m2), SVI = SV / BSA (mL/m2).
+
+    >>> indexed(5.0, 2.0)
+    2.5
+    """
+    return value / bsa_m2
+
+
+def resistance(upstream: float, downstream: float, flow: float) -> float:
+    """Vascular resistance (dyn.s/cm5) = k x (upstream - downstream) (mm[Hg]) / flow (L/min).
+
+    Hydraulic analogue of Ohm's law (pressure drop = flow x resistance), standard critical
+    care texts. k = 1 mm[Hg].min/L in dyn.s/cm5 = 79.99 (often rounded to 80); see
+    :data:`hemostream.core.units.MMHG_MIN_PER_L_IN_DYN_S_CM5`. Used for
+    SVR (MAP, CVP, CO), PVR (PAP_MEAN, PAWP, CO) and, with CI for flow, SVRI (dyn.s.m2/cm5).
+
+    >>> round(resistance(90, 5, 5.0))
+    1360
+    """
+    return MMHG_MIN_PER_L_IN_DYN_S_CM5 * (upstream - downstream) / flow
+
+
+def stroke_work_index(svi_ml_m2: float, upstream: float, downstream: float) -> float:
+    """Stroke work index (g.m/m2) = SVI x (upstream - downstream) x 0.0136.
+
+    LVSWI uses MAP and PAWP, RVSWI uses PAP_MEAN and CVP; 0.0136 converts mm[Hg].mL to g.m
+    (common practice; the factor is :data:`hemostream.core.units.MMHG_ML_IN_GF_M`).
+
+    >>> round(stroke_work_index(40, 93, 10), 1)
+    45.1
+    """
+    return svi_ml_m2 * (upstream - downstream) * MMHG_ML_IN_GF_M
+
+
+def shock_index(hr_min: float, sbp: float) -> float:
+    """Shock index SI = HR / systolic pressure; normal 0.5-0.7.
+
+    Allgower M, Burri C, Dtsch Med Wochenschr 1967;92:1947.
+
+    >>> shock_index(84, 120)
+    0.7
+    """
+    return hr_min / sbp
+
+
+def modified_shock_index(hr_min: float, map_mmhg: float) -> float:
+    """Modified shock index MSI = HR / MAP; normal about 0.7-1.3 (Liu YC et al.,
+    Am J Emerg Med 2012 — from memory).
+
+    >>> modified_shock_index(90, 90)
+    1.0
+    """
+    return hr_min / map_mmhg
+
+
+# --------------------------------------------------------------------------- evaluation
+
+
+class Current(NamedTuple):
+    """A current input: canonical value and its measurement time (epoch seconds)."""
+
+    value: float
+    time: float
+
+
+class Derived(NamedTuple):
+    param: str
+    value: float
+    inputs: tuple[tuple[str, float], ...]   # (param, measurement time) of every input
+
+
+Getter = Callable[[str], "Current | None"]
+
+
+def derive_all(get: Getter, bsa: tuple[float, float] | None) -> tuple[list[Derived], dict[str, Current]]:
+    """Evaluate every derived value from the current inputs.
+
+    ``get(param)`` returns the current valid value of a measured parameter (already checked
+    against its maximum age) or None. ``bsa`` is (m2, admission time) or None.
+    Returns the derived values and the *effective* values the rules layer reads
+    (``MAP``, ``SBP``, ``PAP_MEAN``, ``HR``, ``SV``, ``CO``: measured where measured, else
+    calculated), each with its provenance time.
+    """
+    out: list[Derived] = []
+    eff: dict[str, Current] = {}
+    src: dict[str, tuple[tuple[str, float], ...]] = {}
+
+    def emit(param: str, value: float, inputs: tuple[tuple[str, float], ...]) -> None:
+        if math.isfinite(value):
+            out.append(Derived(param, value, inputs))
+
+    def measured(name: str, p: str) -> bool:
+        c = get(p)
+        if c is None:
+            return False
+        eff[name] = c
+        src[name] = ((p, c.time),)
+        return True
+
+    # Arterial pressure: the line is preferred over the cuff (continuous, beat to beat);
+    # the cuff is used only when no line value is current.
+    for sys_p, dia_p, mean_p in (("ABP_SYS", "ABP_DIA", "ABP_MEAN"),
+                                 ("NIBP_SYS", "NIBP_DIA", "NIBP_MEAN")):
+        s, d = get(sys_p), get(dia_p)
+        if s is None and d is None and get(mean_p) is None:
+            continue
+        if s is not None:
+            eff["SBP"], src["SBP"] = s, ((sys_p, s.time),)
+        if s is not None and d is not None:
+            ins = ((sys_p, s.time), (dia_p, d.time))
+            emit("PP", pulse_pressure(s.value, d.value), ins)
+        if not measured("MAP", mean_p) and s is not None and d is not None:
+            m = mean_pressure(s.value, d.value)
+            emit("MAP", m, ins)
+            eff["MAP"], src["MAP"] = Current(m, max(s.time, d.time)), ins
+        break
+
+    # Pulmonary artery mean pressure.
+    if not measured("PAP_MEAN", "PAP_MEAN"):
+        s, d = get("PAP_SYS"), get("PAP_DIA")
+        if s is not None and d is not None:
+            eff["PAP_MEAN"] = Current(mean_pressure(s.value, d.value), max(s.time, d.time))
+            src["PAP_MEAN"] = (("PAP_SYS", s.time), ("PAP_DIA", d.time))
+
+    # Heart rate: ECG preferred, pulse rate as fallback.
+    if not measured("HR", "HR"):
+        measured("HR", "PR")
+
+    # Stroke volume and cardiac output, each from the other and HR when not measured.
+    have_sv = measured("SV", "SV")
+    have_co = measured("CO", "CO")
+    if "HR" in eff and eff["HR"].value > 0:
+        hr, hr_src = eff["HR"], src["HR"]
+        if have_co and not have_sv:
+            ins = src["CO"] + hr_src
+            v = stroke_volume(eff["CO"].value, hr.value)
+            emit("SV", v, ins)
+            eff["SV"], src["SV"] = Current(v, max(t for _, t in ins)), ins
+        elif have_sv and not have_co:
+            ins = hr_src + src["SV"]
+            v = cardiac_output(hr.value, eff["SV"].value)
+            emit("CO", v, ins)
+            eff["CO"], src["CO"] = Current(v, max(t for _, t in ins)), ins
+
+    bsa_src: tuple[tuple[str, float], ...] = ()
+    if bsa is not None:
+        bsa_src = (("BSA", bsa[1]),)
+    co = eff.get("CO")
+    sv = eff.get("SV")
+    mp = eff.get("MAP")
+    cvp = get("CVP")
+    pawp = get("PAWP")
+    pam = eff.get("PAP_MEAN")
+
+    ci = svi = None
+    if bsa is not None and bsa[0] > 0:
+        if co is not None:
+            ci = indexed(co.value, bsa[0])
+            emit("CI", ci, src["CO"] + bsa_src)
+        if sv is not None:
+            svi = indexed(sv.value, bsa[0])
+            emit("SVI", svi, src["SV"] + bsa_src)
+
+    if co is not None and co.value > 0:
+        if mp is not None and cvp is not None:
+            emit("SVR", resistance(mp.value, cvp.value, co.value),
+                 src["MAP"] + (("CVP", cvp.time),) + src["CO"])
+        if pam is not None and pawp is not None:
+            emit("PVR", resistance(pam.value, pawp.value, co.value),
+                 src["PAP_MEAN"] + (("PAWP", pawp.time),) + src["CO"])
+    if ci is not None and ci > 0 and mp is not None and cvp is not None:
+        emit("SVRI", resistance(mp.value, cvp.value, ci),
+             src["MAP"] + (("CVP", cvp.time),) + src["CO"] + bsa_src)
+    if svi is not None:
+        if mp is not None and pawp is not None:
+            emit("LVSWI", stroke_work_index(svi, mp.value, pawp.value),
+                 src["SV"] + bsa_src + src["MAP"] + (("PAWP", pawp.time),))
+        if pam is not None and cvp is not None:
+            emit("RVSWI", stroke_work_index(svi, pam.value, cvp.value),
+                 src["SV"] + bsa_src + src["PAP_MEAN"] + (("CVP", cvp.time),))
+
+    hr = eff.get("HR")
+    if hr is not None:
+        sbp = eff.get("SBP")
+        if sbp is not None and sbp.value > 0:
+            emit("SI", shock_index(hr.value, sbp.value), src["HR"] + src["SBP"])
+        if mp is not None and mp.value > 0:
+            emit("MSI", modified_shock_index(hr.value, mp.value), src["HR"] + src["MAP"])
+    return out, eff

@@ -1,0 +1,229 @@
+"""Wire format version 1: topics, payload models and recording lines.
+
+The contract between bedside gateways (or the simulators) and hemostream. It is documented
+for integration engineers in ``docs/wire-format.md``; this module is its executable form.
+Unknown JSON fields are ignored (so the format can grow compatibly); wrong types, missing
+fields and out-of-range values are errors that name the field.
+"""
+
+from __future__ import annotations
+
+import re
+from datetime import datetime
+from typing import Annotated, Any, Literal, NamedTuple
+
+from pydantic import (
+    AwareDatetime,
+    BaseModel,
+    BeforeValidator,
+    ConfigDict,
+    Field,
+    StrictBool,
+    StrictFloat,
+    StrictInt,
+    StrictStr,
+)
+
+from .units import CANONICAL
+
+VERSION = 1
+
+# --------------------------------------------------------------------------- parameters
+
+
+class ParamSpec(NamedTuple):
+    dimension: str
+    meaning: str
+
+    @property
+    def canonical_unit(self) -> str:
+        return CANONICAL[self.dimension]
+
+
+PARAMS: dict[str, ParamSpec] = {
+    "HR": ParamSpec("rate", "heart rate (ECG)"),
+    "PR": ParamSpec("rate", "pulse rate (oximeter or arterial line)"),
+    "ABP_SYS": ParamSpec("pressure", "invasive arterial pressure, systolic"),
+    "ABP_DIA": ParamSpec("pressure", "invasive arterial pressure, diastolic"),
+    "ABP_MEAN": ParamSpec("pressure", "invasive arterial pressure, mean"),
+    "NIBP_SYS": ParamSpec("pressure", "cuff pressure, systolic (intermittent)"),
+    "NIBP_DIA": ParamSpec("pressure", "cuff pressure, diastolic (intermittent)"),
+    "NIBP_MEAN": ParamSpec("pressure", "cuff pressure, mean (intermittent)"),
+    "CVP": ParamSpec("pressure", "central venous pressure (mean)"),
+    "PAP_SYS": ParamSpec("pressure", "pulmonary artery pressure, systolic"),
+    "PAP_DIA": ParamSpec("pressure", "pulmonary artery pressure, diastolic"),
+    "PAP_MEAN": ParamSpec("pressure", "pulmonary artery pressure, mean"),
+    "PAWP": ParamSpec("pressure", "pulmonary artery wedge pressure (intermittent)"),
+    "CO": ParamSpec("flow", "cardiac output"),
+    "SV": ParamSpec("volume", "stroke volume"),
+    "SPO2": ParamSpec("saturation", "peripheral oxygen saturation"),
+    "RR": ParamSpec("rate", "respiratory rate"),
+    "TEMP": ParamSpec("temperature", "core temperature"),
+}
+
+STATUSES = ("valid", "questionable", "invalid", "calibrating", "test")
+Status = Literal["valid", "questionable", "invalid", "calibrating", "test"]
+
+# --------------------------------------------------------------------------- topics
+
+TOPIC_KINDS_IN = ("obs", "admit", "note", "cmd")
+TOPIC_KINDS_OUT = ("alarm", "derived")
+_ID = r"[A-Za-z0-9_-]{1,32}"
+_TOPIC_RE = re.compile(rf"^hemo/({_ID})/({_ID})/([a-z]+)$")
+ID_RE = re.compile(rf"^{_ID}$")
+
+
+class Topic(NamedTuple):
+    unit: str
+    bed: str
+    kind: str
+
+    def __str__(self) -> str:
+        return f"hemo/{self.unit}/{self.bed}/{self.kind}"
+
+
+class TopicError(ValueError):
+    pass
+
+
+def parse_topic(topic: str) -> Topic:
+    """Split ``hemo/<unit>/<bed>/<kind>``; raise :class:`TopicError` with a readable reason.
+
+    >>> parse_topic("hemo/SDU/bed-04/obs")
+    Topic(unit='SDU', bed='bed-04', kind='obs')
+    """
+    m = _TOPIC_RE.match(topic)
+    if m is None:
+        parts = topic.split("/")
+        if len(parts) != 4 or parts[0] != "hemo":
+            raise TopicError(
+                f"topic {topic[:200]!r}: expected hemo/<unit>/<bed>/<kind> (4 levels)")
+        for name, part in (("unit", parts[1]), ("bed", parts[2])):
+            if not ID_RE.match(part):
+                raise TopicError(
+                    f"topic {topic[:200]!r}: {name} {part[:40]!r} must be 1-32 characters "
+                    "of A-Z a-z 0-9 - _")
+        raise TopicError(f"topic {topic[:200]!r}: unknown kind {parts[3][:40]!r}")
+    unit, bed, kind = m.groups()
+    if kind not in TOPIC_KINDS_IN and kind not in TOPIC_KINDS_OUT:
+        raise TopicError(
+            f"topic {topic[:200]!r}: unknown kind {kind!r}; expected one of "
+            + ", ".join(TOPIC_KINDS_IN + TOPIC_KINDS_OUT))
+    return Topic(unit, bed, kind)
+
+
+def topic(unit: str, bed: str, kind: str) -> str:
+    return f"hemo/{unit}/{bed}/{kind}"
+
+
+# --------------------------------------------------------------------------- payloads
+
+
+def _rfc3339_only(v: Any) -> Any:
+    # pydantic would also take numbers as Unix times; the wire format says RFC 3339 text.
+    if isinstance(v, datetime):
+        return v
+    if not isinstance(v, str):
+        raise ValueError("expected an RFC 3339 timestamp string such as 2026-12-01T08:15:00Z")
+    return v
+
+
+Time = Annotated[AwareDatetime, BeforeValidator(_rfc3339_only)]
+Number = StrictInt | StrictFloat
+PositiveNumber = Annotated[Number, Field(gt=0)]
+
+_MODEL = ConfigDict(extra="ignore", allow_inf_nan=False, frozen=True)
+
+
+class Observation(BaseModel):
+    model_config = _MODEL
+    param: StrictStr
+    value: Number
+    unit: StrictStr
+    status: Status = "valid"
+    time: Time | None = None
+
+
+class ObsMessage(BaseModel):
+    model_config = _MODEL
+    v: Literal[1]
+    device: Annotated[StrictStr, Field(min_length=1, max_length=64, pattern=r"^[\x21-\x7e]+$")]
+    seq: Annotated[StrictInt, Field(ge=0)]
+    time: Time
+    obs: Annotated[list[Observation], Field(min_length=1, max_length=256)]
+
+
+class Limit(BaseModel):
+    model_config = _MODEL
+    low: Number | None = None
+    high: Number | None = None
+
+
+class AdmitMessage(BaseModel):
+    model_config = _MODEL
+    v: Literal[1]
+    time: Time
+    height_cm: Annotated[Number, Field(gt=30, le=260)] | None = None
+    weight_kg: Annotated[Number, Field(gt=0.3, le=500)] | None = None
+    limits: dict[StrictStr, Limit] = Field(default_factory=dict)
+    discharged: StrictBool = False
+
+
+NOTE_KINDS = ("fluid_bolus", "line_flush", "zeroing", "reposition", "sample_draw",
+              "free_text", "deterioration_onset")
+
+
+class NoteMessage(BaseModel):
+    """A clinical annotation. ``deterioration_onset`` is an extension of v1 (written by the
+    simulators' scenarios to mark when a deterioration began, for detection-delay checks)."""
+
+    model_config = _MODEL
+    v: Literal[1]
+    time: Time
+    kind: Literal["fluid_bolus", "line_flush", "zeroing", "reposition", "sample_draw",
+                  "free_text", "deterioration_onset"]
+    volume_ml: PositiveNumber | None = None
+    over_min: Annotated[Number, Field(ge=0)] | None = None
+    param: StrictStr | None = None
+    by: Annotated[StrictStr, Field(max_length=64)] | None = None
+    text: Annotated[StrictStr, Field(max_length=500)] | None = None
+    duration_s: Annotated[Number, Field(ge=0)] | None = None
+
+
+class CommandMessage(BaseModel):
+    """``cmd`` topic payload (the project's own extension of v1): acknowledge or pause audio.
+
+    ``alarm`` is the alarm id as published on the ``alarm`` topic (or a rule id, which
+    addresses that rule's active alarm on the bed).
+    """
+
+    model_config = _MODEL
+    v: Literal[1]
+    time: Time
+    action: Literal["acknowledge", "pause_audio"]
+    alarm: Annotated[StrictStr, Field(min_length=1, max_length=128)]
+    by: Annotated[StrictStr, Field(min_length=1, max_length=64)]
+
+
+PAYLOAD_MODELS: dict[str, type[BaseModel]] = {
+    "obs": ObsMessage,
+    "admit": AdmitMessage,
+    "note": NoteMessage,
+    "cmd": CommandMessage,
+}
+
+
+class RecordingLine(BaseModel):
+    """One line of a recording file (JSON Lines, one MQTT message per line, arrival order)."""
+
+    model_config = ConfigDict(extra="ignore")
+    rx: Time
+    topic: StrictStr
+    payload: dict[str, Any] | StrictStr
+
+
+def format_time(t: datetime) -> str:
+    """RFC 3339 in UTC with millisecond precision and a ``Z`` suffix."""
+    from datetime import timezone
+
+    return t.astimezone(timezone.utc).isoformat(timespec="milliseconds").replace("+00:00", "Z")

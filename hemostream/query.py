@@ -1,0 +1,132 @@
+"""Reading stored rows back: observations, derived values, rejects, notes and alarm events."""
+
+from __future__ import annotations
+
+import csv
+import json
+import sys
+from datetime import datetime
+from typing import IO, Any, Iterator
+
+from sqlalchemy import select
+
+from .core.processor import epoch, iso
+from .store import TABLES
+
+KINDS = ("observations", "derived", "rejected", "notes", "alarms", "admissions", "commands")
+
+# columns shown per kind, in order (after time, care_unit, bed)
+_COLUMNS: dict[str, tuple[str, ...]] = {
+    "observations": ("param", "value", "unit", "status", "raw_value", "raw_unit", "late"),
+    "derived": ("param", "value", "unit", "inputs"),
+    "notes": ("kind", "param", "volume_ml", "over_min", "duration_s", "by", "text"),
+    "alarms": ("alarm_id", "rule", "priority", "category", "transition", "value", "by",
+               "details"),
+    "admissions": ("height_cm", "weight_kg", "bsa_m2", "bsa_formula", "limits", "discharged"),
+    "commands": ("action", "alarm", "by", "result"),
+    "rejected": ("topic", "category", "reason", "obs_index", "device", "seq", "size"),
+}
+
+
+def parse_since(text: str) -> float:
+    t = datetime.fromisoformat(text)
+    if t.tzinfo is None:
+        raise ValueError(f"--since {text!r}: give a UTC offset, e.g. 2026-12-01T08:00:00Z")
+    return epoch(t)
+
+
+def rows(engine, kind: str, bed: str | None = None, param: str | None = None,
+         since: float | None = None, limit: int | None = None) -> Iterator[dict[str, Any]]:
+    """Rows of ``kind`` as dicts with RFC 3339 times, oldest first."""
+    table = TABLES["alarm_events" if kind == "alarms" else kind]
+    beds = TABLES["beds"]
+    if kind == "rejected":
+        stmt = select(table)
+        tcol = table.c.rx
+        if bed:
+            stmt = stmt.where(table.c.topic.like(f"%/{bed.split('/')[-1]}/%"))
+    else:
+        stmt = select(table, beds.c.unit.label("care_unit"), beds.c.bed.label("bed_name")
+                      ).join(beds, table.c.bed_id == beds.c.id)
+        tcol = table.c.time
+        if bed:
+            if "/" in bed:
+                u, b = bed.split("/", 1)
+                stmt = stmt.where(beds.c.unit == u, beds.c.bed == b)
+            else:
+                stmt = stmt.where(beds.c.bed == bed)
+    if param and "param" in table.c:
+        stmt = stmt.where(table.c.param == param)
+    elif param and kind == "alarms":
+        stmt = stmt.where(table.c.rule == param)
+    if since is not None:
+        stmt = stmt.where(tcol >= since)
+    stmt = stmt.order_by(tcol, table.c.id)
+    if limit:
+        stmt = stmt.limit(limit)
+    with engine.connect() as conn:
+        for r in conn.execute(stmt):
+            m = r._mapping
+            if kind == "rejected":
+                out = {"rx": iso(m["rx"]) if m["rx"] is not None else None}
+                for c in _COLUMNS[kind]:
+                    out[c] = m[c]
+                raw = m["raw"]
+                out["raw"] = raw.decode("utf-8", "replace") if raw is not None else None
+            else:
+                out = {"time": iso(m["time"]), "care_unit": m["care_unit"],
+                       "bed": m["bed_name"]}
+                for c in _COLUMNS[kind]:
+                    v = m[c]
+                    if c in ("inputs", "details", "limits") and isinstance(v, str):
+                        v = json.loads(v)
+                    out[c] = v
+            yield out
+
+
+def write(rows_iter, fmt: str, stream: IO[str] = sys.stdout, console=None) -> int:
+    n = 0
+    if fmt == "jsonl":
+        for r in rows_iter:
+            stream.write(json.dumps(r, separators=(",", ":"), default=str) + "\n")
+            n += 1
+        return n
+    if fmt == "csv":
+        w = None
+        for r in rows_iter:
+            if w is None:
+                w = csv.DictWriter(stream, fieldnames=list(r))
+                w.writeheader()
+            w.writerow({k: json.dumps(v) if isinstance(v, dict | list) else v
+                        for k, v in r.items()})
+            n += 1
+        return n
+    from rich.console import Console
+    from rich.table import Table
+
+    console = console or Console()
+    table = None
+    for r in rows_iter:
+        r.pop("raw", None)          # bytes are for jsonl/csv; the table shows the reason
+        if table is None:
+            table = Table(*r.keys(), show_lines=False)
+            table.columns[0].no_wrap = True
+        table.add_row(*(_cell(v) for v in r.values()))
+        n += 1
+    if table is None:
+        console.print("no rows")
+    else:
+        console.print(table)
+    return n
+
+
+def _cell(v: Any) -> str:
+    if v is None:
+        return ""
+    if isinstance(v, float):
+        return f"{v:.4g}" if abs(v) < 1e4 else f"{v:.0f}"
+    if isinstance(v, dict | list):
+        s = json.dumps(v, separators=(",", ":"))
+        return s if len(s) < 80 else s[:77] + "..."
+    s = str(v)
+    return s if len(s) < 120 else s[:117] + "..."

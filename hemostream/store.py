@@ -1,0 +1,317 @@
+"""Storage: SQLAlchemy 2.0 typed ORM models, engine set-up and a batched writer thread.
+
+The same models serve SQLite (the embedded default, WAL mode) and PostgreSQL (a URL away).
+Times are stored as epoch seconds UTC (double precision): portable, compact and fast to
+insert; the query command prints them as RFC 3339. Rows arrive from the core as plain dicts
+and are written with Core ``insert`` in batches on a writer thread, so a slow disk never
+stalls ingest and the hot path creates no ORM objects.
+"""
+
+from __future__ import annotations
+
+import logging
+import queue
+import threading
+import time as _time
+from dataclasses import dataclass
+from typing import Any, Callable, Iterable
+
+from sqlalchemy import (BigInteger, Boolean, Float, ForeignKey, Index, Integer, LargeBinary,
+                        String, Text, UniqueConstraint, create_engine, event, func, insert,
+                        select)
+from sqlalchemy.engine import Engine
+from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
+
+log = logging.getLogger(__name__)
+
+
+class Base(DeclarativeBase):
+    pass
+
+
+#: 64-bit ids on PostgreSQL; on SQLite only INTEGER PRIMARY KEY is the auto-incrementing rowid
+BigId = BigInteger().with_variant(Integer, "sqlite")
+
+
+class Bed(Base):
+    __tablename__ = "beds"
+    id: Mapped[int] = mapped_column(Integer, primary_key=True, autoincrement=False)
+    unit: Mapped[str] = mapped_column(String(32))
+    bed: Mapped[str] = mapped_column(String(32))
+    __table_args__ = (UniqueConstraint("unit", "bed"),)
+
+
+class Message(Base):
+    """Every accepted message (identity for duplicate detection, audit of arrival)."""
+
+    __tablename__ = "messages"
+    id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=False)
+    bed_id: Mapped[int] = mapped_column(ForeignKey("beds.id"))
+    rx: Mapped[float] = mapped_column(Float(53))
+    topic: Mapped[str] = mapped_column(String(512))
+    kind: Mapped[str] = mapped_column(String(8))
+    device: Mapped[str | None] = mapped_column(String(64))
+    seq: Mapped[int | None] = mapped_column(BigInteger)
+    time: Mapped[float] = mapped_column(Float(53))
+    late: Mapped[bool] = mapped_column(Boolean)
+    n_obs: Mapped[int] = mapped_column(Integer)
+    #: content digest of admit/note/cmd messages (their identity for duplicate detection)
+    digest: Mapped[str | None] = mapped_column(String(16))
+    __table_args__ = (Index("ix_messages_device", "device", "id"),)
+
+
+class Observation(Base):
+    """Every received observation: canonical value and unit, and the value as received."""
+
+    __tablename__ = "observations"
+    id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
+    message_id: Mapped[int] = mapped_column(ForeignKey("messages.id"))
+    bed_id: Mapped[int] = mapped_column(ForeignKey("beds.id"))
+    param: Mapped[str] = mapped_column(String(16))
+    time: Mapped[float] = mapped_column(Float(53))
+    value: Mapped[float] = mapped_column(Float(53))
+    unit: Mapped[str] = mapped_column(String(16))
+    raw_value: Mapped[float] = mapped_column(Float(53))
+    raw_unit: Mapped[str] = mapped_column(String(16))
+    status: Mapped[str] = mapped_column(String(16))
+    late: Mapped[bool] = mapped_column(Boolean)
+    __table_args__ = (Index("ix_observations_bed_param_time", "bed_id", "param", "time"),)
+
+
+class DerivedValue(Base):
+    """A derived value with the inputs (param, measurement time) it was computed from."""
+
+    __tablename__ = "derived"
+    id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
+    bed_id: Mapped[int] = mapped_column(ForeignKey("beds.id"))
+    param: Mapped[str] = mapped_column(String(16))
+    time: Mapped[float] = mapped_column(Float(53))
+    value: Mapped[float] = mapped_column(Float(53))
+    unit: Mapped[str] = mapped_column(String(16))
+    inputs: Mapped[str] = mapped_column(Text)
+    __table_args__ = (Index("ix_derived_bed_param_time", "bed_id", "param", "time"),)
+
+
+class Admission(Base):
+    __tablename__ = "admissions"
+    id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
+    message_id: Mapped[int] = mapped_column(ForeignKey("messages.id"))
+    bed_id: Mapped[int] = mapped_column(ForeignKey("beds.id"))
+    time: Mapped[float] = mapped_column(Float(53))
+    height_cm: Mapped[float | None] = mapped_column(Float)
+    weight_kg: Mapped[float | None] = mapped_column(Float)
+    bsa_m2: Mapped[float | None] = mapped_column(Float)
+    bsa_formula: Mapped[str | None] = mapped_column(String(16))
+    limits: Mapped[str] = mapped_column(Text)
+    discharged: Mapped[bool] = mapped_column(Boolean)
+
+
+class Note(Base):
+    __tablename__ = "notes"
+    id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
+    message_id: Mapped[int] = mapped_column(ForeignKey("messages.id"))
+    bed_id: Mapped[int] = mapped_column(ForeignKey("beds.id"))
+    time: Mapped[float] = mapped_column(Float(53))
+    kind: Mapped[str] = mapped_column(String(32))
+    volume_ml: Mapped[float | None] = mapped_column(Float)
+    over_min: Mapped[float | None] = mapped_column(Float)
+    param: Mapped[str | None] = mapped_column(String(16))
+    by: Mapped[str | None] = mapped_column(String(64))
+    text: Mapped[str | None] = mapped_column(Text)
+    duration_s: Mapped[float | None] = mapped_column(Float)
+
+
+class Command(Base):
+    """Acknowledge / audio-pause commands as received, with what became of them (audit)."""
+
+    __tablename__ = "commands"
+    id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
+    message_id: Mapped[int] = mapped_column(ForeignKey("messages.id"))
+    bed_id: Mapped[int] = mapped_column(ForeignKey("beds.id"))
+    time: Mapped[float] = mapped_column(Float(53))
+    rx: Mapped[float] = mapped_column(Float(53))
+    action: Mapped[str] = mapped_column(String(16))
+    alarm: Mapped[str] = mapped_column(String(128))
+    by: Mapped[str] = mapped_column(String(64))
+    result: Mapped[str] = mapped_column(Text)
+
+
+class Rejected(Base):
+    """Input that failed a rule of the wire format: where, when, what and why."""
+
+    __tablename__ = "rejected"
+    id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
+    rx: Mapped[float | None] = mapped_column(Float(53))
+    topic: Mapped[str] = mapped_column(String(512))
+    category: Mapped[str] = mapped_column(String(32))
+    reason: Mapped[str] = mapped_column(Text)
+    obs_index: Mapped[int | None] = mapped_column(Integer)
+    device: Mapped[str | None] = mapped_column(String(64))
+    seq: Mapped[int | None] = mapped_column(BigInteger)
+    raw: Mapped[bytes] = mapped_column(LargeBinary)
+    size: Mapped[int] = mapped_column(Integer)
+
+
+class AlarmEvent(Base):
+    """One alarm lifecycle transition (or rule information such as a fluid-challenge result)."""
+
+    __tablename__ = "alarm_events"
+    id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
+    bed_id: Mapped[int] = mapped_column(ForeignKey("beds.id"))
+    time: Mapped[float] = mapped_column(Float(53))
+    alarm_id: Mapped[str] = mapped_column(String(128))
+    rule: Mapped[str] = mapped_column(String(64))
+    priority: Mapped[str] = mapped_column(String(8))
+    category: Mapped[str] = mapped_column(String(16))
+    transition: Mapped[str] = mapped_column(String(32))
+    value: Mapped[float | None] = mapped_column(Float(53))
+    details: Mapped[str] = mapped_column(Text)
+    by: Mapped[str | None] = mapped_column(String(64))
+    __table_args__ = (Index("ix_alarm_events_bed_time", "bed_id", "time"),)
+
+
+TABLES = {
+    "beds": Bed.__table__, "messages": Message.__table__,
+    "observations": Observation.__table__, "derived": DerivedValue.__table__,
+    "admissions": Admission.__table__, "notes": Note.__table__,
+    "commands": Command.__table__, "rejected": Rejected.__table__,
+    "alarm_events": AlarmEvent.__table__,
+}
+#: insertion order that respects foreign keys
+INSERT_ORDER = ("beds", "messages", "observations", "derived", "admissions", "notes",
+                "commands", "rejected", "alarm_events")
+
+
+class StoreError(RuntimeError):
+    pass
+
+
+def open_engine(url: str, *, create: bool = True) -> Engine:
+    """Create an engine for ``url`` (SQLite in WAL mode) and make sure the tables exist."""
+    kwargs: dict[str, Any] = {}
+    if url.startswith("sqlite"):
+        kwargs["connect_args"] = {"check_same_thread": False}
+    try:
+        engine = create_engine(url, **kwargs)
+    except Exception as e:  # bad URL, missing driver
+        raise StoreError(f"database URL {url!r}: {e}") from e
+    if engine.dialect.name == "sqlite":
+        @event.listens_for(engine, "connect")
+        def _pragmas(dbapi_conn, _rec):  # pragma: no cover - exercised via every test
+            cur = dbapi_conn.cursor()
+            cur.execute("PRAGMA journal_mode=WAL")
+            cur.execute("PRAGMA synchronous=NORMAL")
+            cur.execute("PRAGMA foreign_keys=ON")
+            cur.close()
+    try:
+        if create:
+            Base.metadata.create_all(engine)
+        else:
+            with engine.connect():
+                pass
+    except Exception as e:
+        raise StoreError(f"cannot open database {url!r}: {e.__class__.__name__}: "
+                         f"{str(e).splitlines()[0]}") from e
+    return engine
+
+
+@dataclass
+class Resume:
+    """What a processor needs from an existing database to carry on where it stopped."""
+
+    next_ids: dict[str, int]
+    beds: list[tuple[int, str, str]]
+    messages: list[tuple[str, Any]]
+
+
+def load_resume(engine: Engine, recent: int = 200_000) -> Resume:
+    """Next ids, known beds, and the identities of the most recent messages (for dedup)."""
+    m = Message.__table__
+    with engine.connect() as conn:
+        max_id = conn.execute(select(func.max(m.c.id))).scalar() or 0
+        beds = [(r.id, r.unit, r.bed) for r in conn.execute(select(Bed.__table__))]
+        rows = conn.execute(
+            select(m.c.kind, m.c.topic, m.c.device, m.c.seq, m.c.time, m.c.digest)
+            .where(m.c.id > max_id - recent).order_by(m.c.id)).all()
+    known = [(r.device, (r.seq, r.time)) if r.kind == "obs"
+             else (r.topic, (r.kind, r.time, r.digest)) for r in rows]
+    return Resume(next_ids={"messages": max_id + 1,
+                            "beds": max((b[0] for b in beds), default=0) + 1},
+                  beds=beds, messages=known)
+
+
+def write_rows(engine: Engine, rows: dict[str, list[dict]]) -> None:
+    """Insert rows of several tables in one transaction (foreign-key order)."""
+    with engine.begin() as conn:
+        for name in INSERT_ORDER:
+            batch = rows.get(name)
+            if batch:
+                conn.execute(insert(TABLES[name]), batch)
+
+
+class Writer:
+    """A thread that writes batches of rows; ``submit`` blocks when the queue is full.
+
+    ``on_done`` callbacks run on the writer thread after their batch is committed, which is
+    what lets the live path acknowledge a message to the broker only once it is durable.
+    """
+
+    def __init__(self, engine: Engine, max_batches: int = 64) -> None:
+        self.engine = engine
+        self.q: queue.Queue = queue.Queue(max_batches)
+        self.error: BaseException | None = None
+        self.batches = 0
+        self.rows = 0
+        self.last_latency_s = 0.0
+        self._t = threading.Thread(target=self._run, name="hemostream-writer", daemon=True)
+        self._t.start()
+
+    def submit(self, rows: dict[str, list[dict]],
+               on_done: Callable[[], None] | None = None) -> None:
+        if self.error is not None:
+            raise StoreError(f"database writes failed: {self.error}") from self.error
+        self.q.put((rows, on_done))
+
+    def _run(self) -> None:
+        while True:
+            item = self.q.get()
+            if item is None:
+                self.q.task_done()
+                return
+            rows, on_done = item
+            try:
+                if self.error is None:
+                    t0 = _time.perf_counter()
+                    write_rows(self.engine, rows)
+                    self.last_latency_s = _time.perf_counter() - t0
+                    self.batches += 1
+                    self.rows += sum(len(v) for v in rows.values())
+                    if on_done is not None:
+                        on_done()
+            except BaseException as e:  # keep the thread alive to report
+                log.debug("database write failed: %s", e)
+                self.error = e
+            finally:
+                self.q.task_done()
+
+    def flush(self) -> None:
+        """Wait until everything submitted so far is written."""
+        self.q.join()
+        if self.error is not None:
+            raise StoreError(f"database writes failed: {self.error}") from self.error
+
+    def close(self) -> None:
+        self.q.put(None)
+        self._t.join()
+        if self.error is not None:
+            raise StoreError(f"database writes failed: {self.error}") from self.error
+
+
+def rows_of(outputs: Any) -> dict[str, list[dict]]:
+    """The table rows of a :class:`hemostream.core.processor.Outputs`."""
+    return {name: getattr(outputs, name) for name in INSERT_ORDER if getattr(outputs, name)}
+
+
+def iter_rows(engine: Engine, stmt) -> Iterable[Any]:
+    with engine.connect() as conn:
+        yield from conn.execute(stmt)
