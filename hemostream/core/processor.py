@@ -50,7 +50,7 @@ def format_validation_error(err: ValidationError, limit: int = 5) -> str:
                 loc += f"[{item}]"
             else:
                 loc += ("." if loc else "") + str(item)
-        msg = e["msg"]
+        msg = e["msg"].removeprefix("Value error, ")
         if e["type"] == "json_invalid":
             parts.append(f"payload is not valid JSON ({e.get('ctx', {}).get('error', msg)})")
             continue
@@ -58,7 +58,7 @@ def format_validation_error(err: ValidationError, limit: int = 5) -> str:
             parts.append("payload must be a JSON object")
             continue
         got = e.get("input")
-        shown = "" if e["type"] == "missing" else f" (got {_short(got)})"
+        shown = "" if e["type"] == "missing" or not e["loc"] else f" (got {_short(got)})"
         parts.append(f"{loc or 'payload'}: {msg}{shown}")
     more = len(err.errors()) - limit
     if more > 0:

@@ -22,6 +22,7 @@ from pydantic import (
     StrictFloat,
     StrictInt,
     StrictStr,
+    model_validator,
 )
 
 from .units import CANONICAL
@@ -129,7 +130,7 @@ def _rfc3339_only(v: Any) -> Any:
 
 
 Time = Annotated[AwareDatetime, BeforeValidator(_rfc3339_only)]
-Number = StrictInt | StrictFloat
+Number = StrictFloat   # strict: accepts JSON integers and floats, never strings or booleans
 PositiveNumber = Annotated[Number, Field(gt=0)]
 
 _MODEL = ConfigDict(extra="ignore", allow_inf_nan=False, frozen=True)
@@ -188,6 +189,14 @@ class NoteMessage(BaseModel):
     by: Annotated[StrictStr, Field(max_length=64)] | None = None
     text: Annotated[StrictStr, Field(max_length=500)] | None = None
     duration_s: Annotated[Number, Field(ge=0)] | None = None
+
+    @model_validator(mode="after")
+    def _needs(self) -> "NoteMessage":
+        if self.kind == "fluid_bolus" and self.volume_ml is None:
+            raise ValueError("a fluid_bolus note needs volume_ml (mL given)")
+        if self.kind == "free_text" and not self.text:
+            raise ValueError("a free_text note needs text (at most 500 characters)")
+        return self
 
 
 class CommandMessage(BaseModel):

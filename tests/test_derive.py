@@ -1,0 +1,78 @@
+"""Derived values against published formulas and worked examples (sources beside each)."""
+
+import math
+
+import pytest
+
+from hemostream.core.derive import (Current, bsa_dubois, bsa_mosteller, cardiac_output,
+                                    derive_all, mean_pressure, resistance, shock_index,
+                                    stroke_volume, stroke_work_index)
+
+
+def test_mosteller_worked_example():
+    # Mosteller RD, N Engl J Med 1987;317:1098: 180 cm, 80 kg -> 2.00 m2
+    assert round(bsa_mosteller(180, 80), 2) == 2.00
+
+
+def test_dubois_formula():
+    # Du Bois D, Du Bois EF, Arch Intern Med 1916;17:863: 0.007184 W^0.425 H^0.725
+    assert bsa_dubois(170, 65) == pytest.approx(0.007184 * 65 ** 0.425 * 170 ** 0.725)
+    # both formulas agree within a few per cent for an average adult (common practice)
+    assert bsa_dubois(175, 75) == pytest.approx(bsa_mosteller(175, 75), rel=0.03)
+
+
+def test_svr_textbook_example():
+    # Critical care texts (e.g. Marino, The ICU Book; from memory): MAP 90, CVP 5 (mm[Hg]),
+    # CO 5 L/min -> SVR = 80 x 85 / 5 = 1360 dyn.s.cm-5 (the 80 being 79.99, see pint test)
+    assert resistance(90, 5, 5.0) == pytest.approx(1360, rel=1e-3)
+
+
+def test_map_one_third_rule():
+    # common practice: MAP = DBP + (SBP - DBP)/3; 120/80 -> 93.3
+    assert mean_pressure(120, 80) == pytest.approx(93.333, abs=1e-3)
+
+
+def test_co_sv_hr_relation():
+    # CO = HR x SV (Guyton and Hall, from memory): 70 /min x 70 mL = 4.9 L/min
+    assert cardiac_output(70, 70) == pytest.approx(4.9)
+    assert stroke_volume(4.9, 70) == pytest.approx(70)
+
+
+def test_shock_index_normal_range():
+    # Allgower and Burri 1967: normal SI 0.5-0.7; HR 70 / SBP 120 = 0.58
+    assert 0.5 <= shock_index(70, 120) <= 0.7
+    # common practice: SI >= 1.0 is a warning sign (HR 120, SBP 100 -> 1.2)
+    assert shock_index(120, 100) >= 1.0
+
+
+def test_stroke_work_index_typical_adult():
+    # common practice: LVSWI normal about 50-62 g.m/m2 (from memory);
+    # SVI 45 mL/m2, MAP 93, PAWP 8 -> 45 x 85 x 0.0136 = 52
+    assert stroke_work_index(45, 93, 8) == pytest.approx(45 * 85 * 0.0136, rel=1e-3)
+
+
+def _getter(values):
+    return lambda p: Current(values[p], 0.0) if p in values else None
+
+
+def test_missing_inputs_give_no_value():
+    out, _ = derive_all(_getter({"HR": 80}), None)
+    assert out == []
+
+
+def test_line_preferred_over_cuff_for_shock_index():
+    vals = {"HR": 100, "ABP_SYS": 100, "ABP_DIA": 60, "NIBP_SYS": 125, "NIBP_DIA": 70}
+    out, eff = derive_all(_getter(vals), None)
+    si = [d for d in out if d.param == "SI"]
+    assert si and si[0].value == pytest.approx(1.0)
+    assert ("ABP_SYS", 0.0) in si[0].inputs
+
+
+def test_measured_map_is_not_recalculated_but_used():
+    vals = {"HR": 60, "ABP_SYS": 130, "ABP_DIA": 70, "ABP_MEAN": 95, "CVP": 5, "CO": 6.0}
+    out, eff = derive_all(_getter(vals), None)
+    names = {d.param for d in out}
+    assert "MAP" not in names and eff["MAP"].value == 95
+    svr = next(d for d in out if d.param == "SVR")
+    assert svr.value == pytest.approx(79.9934 * 90 / 6.0, rel=1e-4)
+    assert math.isclose(next(d for d in out if d.param == "SV").value, 100.0)
