@@ -16,7 +16,7 @@ CAUTION = ("hemostream is a secondary display and notification aid, not a medica
 EXAMPLE_RECORDING = (Path(__file__).resolve().parent.parent / "simulators" / "recordings"
                      / "example-ward.jsonl")
 
-err = Console(stderr=True)
+err = Console(stderr=True, soft_wrap=True)
 
 
 def _load_config(path):
@@ -57,7 +57,7 @@ def cmd_replay(args) -> int:
     if args.json:
         print(json.dumps(summary.as_dict(), indent=2))
         return 0
-    out = Console()
+    out = Console(soft_wrap=True)
     out.print(f"[bold]replayed[/] {summary.path} into {summary.db_url}")
     out.print(f"  lines {summary.lines}   messages stored {summary.messages}   "
               f"observations {summary.observations}   duplicates dropped {summary.duplicates}"

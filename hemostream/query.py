@@ -61,7 +61,8 @@ def rows(engine, kind: str, bed: str | None = None, param: str | None = None,
         stmt = stmt.where(table.c.rule == param)
     if since is not None:
         stmt = stmt.where(tcol >= since)
-    stmt = stmt.order_by(tcol, table.c.id)
+    # rejects in arrival order (unreadable lines have no arrival time); the rest by time
+    stmt = stmt.order_by(table.c.id) if kind == "rejected" else stmt.order_by(tcol, table.c.id)
     if limit:
         stmt = stmt.limit(limit)
     with engine.connect() as conn:
