@@ -117,6 +117,23 @@ class UnitConfig(BaseModel):
         return self
 
 
+class BrokerConfig(BaseModel):
+    """The MQTT broker of the live service (``hemostream run``). Secrets never live here:
+    the password comes from the environment variable or file named below."""
+
+    model_config = _STRICT
+    url: str = "mqtt://127.0.0.1:1883"
+    client_id: str = "hemostream-1"
+    username: str | None = None
+    password_env: str | None = None
+    password_file: str | None = None
+    ca_file: str | None = None
+    cert_file: str | None = None
+    key_file: str | None = None
+    keepalive_s: Annotated[int, Field(gt=0)] = 30
+    health_every_s: Annotated[float, Field(gt=0)] = 10.0
+
+
 class Config(BaseModel):
     model_config = _STRICT
     instance: str = "hemostream-1"
@@ -125,3 +142,4 @@ class Config(BaseModel):
     ingest: IngestConfig = Field(default_factory=IngestConfig)
     derive: DeriveConfig = Field(default_factory=DeriveConfig)
     store: StoreConfig = Field(default_factory=StoreConfig)
+    broker: BrokerConfig = Field(default_factory=BrokerConfig)
