@@ -81,6 +81,9 @@ def rows(engine, kind: str, bed: str | None = None, param: str | None = None,
                     v = m[c]
                     if c in ("inputs", "details", "limits") and isinstance(v, str):
                         v = json.loads(v)
+                        if c == "inputs":   # stored as epoch seconds, shown as RFC 3339
+                            v = [[p, iso(t) if isinstance(t, float | int) else t]
+                                 for p, t in v]
                     out[c] = v
             yield out
 

@@ -105,7 +105,8 @@ def replay_file(path: str | Path, db_url: str | None = None, config: Config | No
     resume = load_resume(engine)
     if rules == "default":
         rules = make_rules(cfg)
-    proc = Processor(cfg, rules=rules, next_ids=resume.next_ids, known_beds=resume.beds,
+    proc = Processor(cfg, rules=rules, publish=False, next_ids=resume.next_ids,
+                     known_beds=resume.beds,
                      known_messages=resume.messages)
     writer = Writer(engine)
     summary = ReplaySummary(path=str(p), db_url=url)
@@ -134,7 +135,8 @@ def replay_file(path: str | Path, db_url: str | None = None, config: Config | No
                         delay = (rx - first_rx) / speed - (_time.perf_counter() - wall0)
                         if delay > 0:
                             _time.sleep(delay)
-                if proc.out.row_count() >= batch_rows or (speed and proc.out.row_count()):
+                if (lineno & 255 == 0 and proc.out.row_count() >= batch_rows) or (
+                        speed and proc.out.row_count()):
                     writer.submit(rows_of(proc.drain()))
                 if progress is not None and lineno % 2000 == 0:
                     progress(done, total)

@@ -12,6 +12,7 @@ from __future__ import annotations
 import logging
 import queue
 import threading
+from operator import itemgetter
 import time as _time
 from dataclasses import dataclass
 from typing import Any, Callable, Iterable
@@ -240,13 +241,37 @@ def load_resume(engine: Engine, recent: int = 200_000) -> Resume:
                   beds=beds, messages=known)
 
 
+_SQL_CACHE: dict[tuple[str, str, tuple[str, ...]], str] = {}
+
+
+def _insert_sql(engine: Engine, name: str, cols: tuple[str, ...]) -> str:
+    key = (engine.dialect.name, name, cols)
+    sql = _SQL_CACHE.get(key)
+    if sql is None:
+        sql = _SQL_CACHE[key] = str(insert(TABLES[name]).compile(
+            dialect=engine.dialect, column_keys=list(cols)))
+    return sql
+
+
 def write_rows(engine: Engine, rows: dict[str, list[dict]]) -> None:
-    """Insert rows of several tables in one transaction (foreign-key order)."""
+    """Insert rows of several tables in one transaction (foreign-key order).
+
+    The hot path: each table's batch goes to the driver's ``executemany`` as one statement
+    compiled by SQLAlchemy for the dialect (no per-row ORM or type-processing work; the
+    values are already plain floats, ints, strings, booleans and bytes).
+    """
+    positional = engine.dialect.positional
     with engine.begin() as conn:
         for name in INSERT_ORDER:
             batch = rows.get(name)
-            if batch:
-                conn.execute(insert(TABLES[name]), batch)
+            if not batch:
+                continue
+            cols = tuple(batch[0])
+            sql = _insert_sql(engine, name, cols)
+            params = list(map(itemgetter(*cols), batch)) if positional else batch
+            if positional and len(cols) == 1:
+                params = [(p,) for p in params]
+            conn.exec_driver_sql(sql, params)
 
 
 class Writer:

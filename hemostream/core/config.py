@@ -98,8 +98,8 @@ class StoreConfig(BaseModel):
     #: derived values are recomputable from the stored observations, so each (bed, value)
     #: is stored when it first appears, when it moved by more than `derived_deadband`
     #: (relative) since the last stored one, or at least every `derived_every_s` seconds.
-    derived_every_s: Annotated[float, Field(ge=0)] = 30.0
-    derived_deadband: Annotated[float, Field(ge=0)] = 0.02
+    derived_every_s: Annotated[float, Field(ge=0)] = 60.0
+    derived_deadband: Annotated[float, Field(ge=0)] = 0.05
     batch_rows: Annotated[int, Field(gt=0)] = 20000
 
 

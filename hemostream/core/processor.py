@@ -40,6 +40,15 @@ def iso(t: float) -> str:
         timespec="milliseconds").replace("+00:00", "Z")
 
 
+def inputs_json(inputs: Iterable[tuple[str, float]]) -> str:
+    """Provenance of a derived value as compact JSON: ``[["HR",<epoch s>],...]``.
+
+    >>> inputs_json((("HR", 1.5), ("CO", 2.0)))
+    '[["HR",1.5],["CO",2.0]]'
+    """
+    return "[" + ",".join(f'["{p}",{t!r}]' for p, t in inputs) + "]"
+
+
 def format_validation_error(err: ValidationError, limit: int = 5) -> str:
     """Turn pydantic's errors into one line a person can act on: field path, problem, input."""
     parts = []
@@ -162,11 +171,14 @@ class Processor:
     """Wire format in, rows and published messages out. Not thread-safe; one per worker."""
 
     def __init__(self, config: Config | None = None, *, rules: Any = None,
+                 publish: bool = True,
                  next_ids: dict[str, int] | None = None,
                  known_beds: Iterable[tuple[int, str, str]] = (),
                  known_messages: Iterable[tuple[str, Any]] = ()) -> None:
         self.cfg = config or Config()
         self.rules = rules
+        #: build the messages a live sink publishes (a replay into a database needs none)
+        self.publish = publish
         ids = next_ids or {}
         self._next_message = ids.get("messages", 1)
         self._next_bed = ids.get("beds", 1)
@@ -388,11 +400,9 @@ class Processor:
                 stored[d.param] = (now, d.value)
                 self.out.derived.append({
                     "bed_id": bed.id, "param": d.param, "time": now, "value": d.value,
-                    "unit": DERIVED_UNITS[d.param],
-                    "inputs": json.dumps([[p, iso(pt)] for p, pt in d.inputs],
-                                         separators=(",", ":"))})
+                    "unit": DERIVED_UNITS[d.param], "inputs": inputs_json(d.inputs)})
                 self.counters.derived_stored += 1
-        if publish_vals:
+        if publish_vals and self.publish:
             self.out.publish.append((f"hemo/{bed.unit}/{bed.bed}/derived",
                                      {"v": 1, "time": iso(now), "values": publish_vals},
                                      False))
@@ -419,8 +429,7 @@ class Processor:
         if bsa is not None:
             self.out.derived.append({
                 "bed_id": bed.id, "param": "BSA", "time": t, "value": bsa, "unit": "m2",
-                "inputs": json.dumps([["height_cm", iso(t)], ["weight_kg", iso(t)]],
-                                     separators=(",", ":"))})
+                "inputs": inputs_json((("height_cm", t), ("weight_kg", t)))})
             self.counters.derived_stored += 1
         if self.rules is not None:
             self._rule_events(self.rules.on_admit(bed.key, t, limits, msg.discharged))
@@ -459,6 +468,8 @@ class Processor:
                                         sort_keys=True, default=str)
             self.out.alarm_events.append(row)
             self.counters.alarm_events += 1
+            if not self.publish:
+                continue
             self.out.publish.append((f"hemo/{unit}/{bed_name}/alarm",
                                      {"v": 1, "event": {**ev.as_row(), "time": iso(ev.time)}},
                                      False))
