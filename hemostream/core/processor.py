@@ -402,13 +402,21 @@ class Processor:
                     "bed_id": bed.id, "param": d.param, "time": now, "value": d.value,
                     "unit": DERIVED_UNITS[d.param], "inputs": inputs_json(d.inputs)})
                 self.counters.derived_stored += 1
-        if publish_vals and self.publish:
-            self.out.publish.append((f"hemo/{bed.unit}/{bed.bed}/derived",
-                                     {"v": 1, "time": iso(now), "values": publish_vals},
-                                     False))
         if self.rules is not None:
             self._rule_events(self.rules.on_values(bed.key, now, fresh, frozenset(new),
                                                    nonvalid, device))
+        if self.publish:
+            body: dict[str, Any] = {
+                "v": 1, "time": iso(now), "values": publish_vals,
+                "measured": {p: [c.value, iso(c.time)] for p, c in latest.items()
+                             if now - c.time <= max_age[p]}}
+            if nonvalid:
+                body["status"] = nonvalid
+            if self.rules is not None:
+                body["trends"] = {p: v["direction"] for p, v in
+                                  self.rules.bed_view(bed.key).get("trends", {}).items()
+                                  if v.get("direction")}
+            self.out.publish.append((f"hemo/{bed.unit}/{bed.bed}/derived", body, False))
 
     def _admit(self, bed: _Bed, mid: int, msg: AdmitMessage, t: float, rx: float) -> None:
         bsa = None
