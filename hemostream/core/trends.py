@@ -121,7 +121,7 @@ class RobustTrend:
     """
 
     __slots__ = ("window_s", "bucket_s", "min_points", "min_span_s", "gap_reset_s",
-                 "stale_after_s", "_t", "_v", "_bucket", "_bt", "_bv", "_reading")
+                 "stale_after_s", "_t", "_v", "_bucket", "_bt", "_bv", "_reading", "_dirty")
 
     def __init__(self, window_s: float, bucket_s: float, min_points: int,
                  min_span_fraction: float = 0.5, gap_reset_s: float = 180.0,
@@ -138,11 +138,13 @@ class RobustTrend:
         self._bt: list[float] = []    # open bucket: sample times ...
         self._bv: list[float] = []    # ... and values
         self._reading: TrendReading | None = None
+        self._dirty = False
 
     # ------------------------------------------------------------------ input
 
     def update(self, t: float, v: float) -> bool:
-        """Add a sample; return True when a bucket closed and the estimate was recomputed.
+        """Add a sample; return True when a bucket closed (the estimate is then recomputed
+        at the next :meth:`reading`, so unread trends cost nothing).
 
         A sample older than the open bucket is ignored (it is late for the trend).
         """
@@ -190,7 +192,7 @@ class RobustTrend:
         if k:
             del tt[:k]
             del vv[:k]
-        self._recompute()
+        self._dirty = True
         return True
 
     def _recompute(self) -> None:
@@ -202,17 +204,27 @@ class RobustTrend:
         x = np.frombuffer(tt, dtype=float)
         y = np.frombuffer(vv, dtype=float)
         i, j = _pairs(n)
-        dx = x[j] - x[i]
         dy = y[j] - y[i]
-        slope = float(np.median(dy / dx))       # x strictly increasing: every dx > 0
-        tau = float(np.sign(dy).sum()) / len(dy)
-        level = float(np.median(y))
+        slopes = dy / (x[j] - x[i])             # x strictly increasing: every dx > 0
+        m = len(slopes)
+        h = m // 2
+        if m % 2:
+            slope = float(np.partition(slopes, h)[h])
+        else:
+            part = np.partition(slopes, (h - 1, h))
+            slope = 0.5 * (float(part[h - 1]) + float(part[h]))
+        tau = float(np.count_nonzero(dy > 0) - np.count_nonzero(dy < 0)) / m
+        s = sorted(vv)
+        level = s[n // 2] if n % 2 else 0.5 * (s[n // 2 - 1] + s[n // 2])
         self._reading = TrendReading(slope * 600.0, tau, level, n, tt[-1])
 
     # ------------------------------------------------------------------ read-out
 
     def reading(self, now: float) -> TrendReading | None:
         """The latest estimate, or None when there is none or it is stale at ``now``."""
+        if self._dirty:
+            self._dirty = False
+            self._recompute()
         r = self._reading
         if r is None or now - r.last_t > self.stale_after_s + self.bucket_s:
             return None

@@ -1,0 +1,196 @@
+"""Artifact spans: values that must not make trends, alarms or fluid-challenge results.
+
+Three sources, per pressure *channel* (ABP, CVP, PAP, PAWP, NIBP; each with the parameters a
+flush or zeroing of it spoils, derived ones included):
+
+1. A note (``line_flush``, ``zeroing``, ``sample_draw`` by default) opens a span of
+   ``duration_s`` (default ``note_span_s``) for its ``param``'s channel, or for all invasive
+   channels when it names none. Samples already in the open trend bucket from the note's time
+   on are dropped too (a note is often entered a little after the fact).
+2. A sample with status ``calibrating`` (the device says zeroing or flush in progress).
+3. A flush or zeroing *signature* detected in the values (``auto_detect``):
+
+   - a flat pulse pressure: SYS - DIA below ``flat_pulse_pressure`` (a flush shows the
+     pressure bag as a square wave, a zeroing reads atmosphere: either way no pulse);
+   - a value outside ``signature_outside`` (a flush reads about 300 mm[Hg], a zeroing 0);
+   - a mean-only channel (CVP) dropping by ``zero_step`` or more to within ``zero_band`` of 0
+     within 10 s of its previous value, and staying there.
+
+   Common practice (from memory): these are the shapes a flushed or zeroed fluid-filled
+   transducer system shows; the thresholds are the project's choice.
+
+After a signature the channel stays excluded for ``post_hold_s`` (the trace rings and refills).
+A signature that persists for ``suspected_after_s`` outside a noted span is the technical
+condition ``artifact_suspected`` (a damped, clotted or open line; a zeroing left running).
+"""
+
+from __future__ import annotations
+
+from .rules_config import ArtifactConfig
+from .wire import PARAMS
+
+EMPTY: frozenset[str] = frozenset()
+_RECENT_S = 10.0
+
+
+class ArtifactState:
+    """Per-bed artifact state."""
+
+    __slots__ = ("note_until", "auto_until", "any_until", "sig_since", "prev", "ignored",
+                 "cache_t", "cache")
+
+    def __init__(self) -> None:
+        self.note_until: dict[str, float] = {}
+        self.auto_until: dict[str, float] = {}
+        self.any_until = float("-inf")
+        self.sig_since: dict[str, float] = {}     # channel -> unexplained signature since
+        self.prev: dict[str, tuple[float, float]] = {}  # param -> (time, last clean value)
+        self.ignored: dict[str, None] = {}        # channels whose suspicion was acknowledged
+        self.cache_t = float("nan")
+        self.cache: frozenset[str] = EMPTY
+
+
+class ArtifactDetector:
+    def __init__(self, cfg: ArtifactConfig) -> None:
+        self.cfg = cfg
+        self.channels: dict[str, frozenset[str]] = {
+            ch: frozenset(ps) for ch, ps in cfg.channels.items()}
+        # measured parameter -> its channel (first channel that lists it)
+        self.param_channel: dict[str, str] = {}
+        for ch, ps in cfg.channels.items():
+            for p in ps:
+                if p in PARAMS and p not in self.param_channel:
+                    self.param_channel[p] = ch
+        self.measured: dict[str, tuple[str, ...]] = {
+            ch: tuple(p for p in ps if p in PARAMS and self.param_channel.get(p) == ch)
+            for ch, ps in cfg.channels.items()}
+        self.flat = {ch: (f"{ch}_SYS", f"{ch}_DIA", v)
+                     for ch, v in cfg.flat_pulse_pressure.items()}
+        self.outside = {p: (s.low, s.high) for p, s in cfg.signature_outside.items()}
+        self.zero_step = dict(cfg.zero_step)
+        # channels that can show a signature, in configuration order
+        self.watch = tuple(ch for ch, ps in self.measured.items()
+                           if ch in self.flat or any(p in self.outside or p in self.zero_step
+                                                     for p in ps))
+
+    # ------------------------------------------------------------------ notes and statuses
+
+    def channels_for(self, param: str | None) -> list[str]:
+        if param is None:
+            return list(self.cfg.note_all_channels)
+        if param in self.channels:
+            return [param]
+        ch = self.param_channel.get(param)
+        if ch is not None:
+            return [ch]
+        # a channel prefix such as "ABP" written as "ABP_LINE", or a derived name
+        return [c for c, ps in self.channels.items() if param in ps][:1]
+
+    def note(self, st: ArtifactState, t: float, param: str | None,
+             duration_s: float | None) -> list[str]:
+        """Open a noted span; return the channels it covers."""
+        dur = self.cfg.note_span_s if duration_s is None else duration_s
+        chs = self.channels_for(param)
+        for ch in chs:
+            st.note_until[ch] = max(st.note_until.get(ch, float("-inf")), t + dur)
+            st.sig_since.pop(ch, None)
+            st.any_until = max(st.any_until, t + dur)
+        st.cache_t = float("nan")
+        return chs
+
+    def affected(self, channels: list[str]) -> list[str]:
+        out: dict[str, None] = {}
+        for ch in channels:
+            for p in self.cfg.channels[ch]:
+                out[p] = None
+        return list(out)
+
+    # ------------------------------------------------------------------ per message
+
+    def check(self, st: ArtifactState, t: float, fresh: dict[str, float],
+              new: frozenset[str], nonvalid: dict[str, str]) -> frozenset[str]:
+        """Update signatures from this message; return the parameters excluded at ``t``."""
+        cfg = self.cfg
+        if nonvalid:
+            for p, s in nonvalid.items():
+                if s == "calibrating":
+                    ch = self.param_channel.get(p)
+                    if ch is not None:
+                        until = t + cfg.post_hold_s
+                        st.auto_until[ch] = max(st.auto_until.get(ch, until), until)
+                        st.any_until = max(st.any_until, until)
+                        st.cache_t = float("nan")
+        if cfg.auto_detect:
+            for ch in self.watch:
+                ps = self.measured[ch]
+                hit = False
+                seen = False
+                for p in ps:
+                    if p in new:
+                        seen = True
+                        break
+                if not seen:
+                    continue
+                fl = self.flat.get(ch)
+                if fl is not None and fl[0] in new and fl[1] in new:
+                    sys_v, dia_v = fresh.get(fl[0]), fresh.get(fl[1])
+                    if sys_v is not None and dia_v is not None and sys_v - dia_v < fl[2]:
+                        hit = True
+                for p in ps:
+                    if p not in new:
+                        continue
+                    v = fresh.get(p)
+                    if v is None:
+                        continue
+                    rng = self.outside.get(p)
+                    if rng is not None and not (rng[0] <= v <= rng[1]):
+                        hit = True
+                    step = self.zero_step.get(p)
+                    if step is not None and abs(v) <= cfg.zero_band:
+                        pv = st.prev.get(p)
+                        if pv is not None and pv[1] - v >= step:
+                            in_sig = (ch in st.sig_since
+                                      or st.auto_until.get(ch, float("-inf")) >= t)
+                            if in_sig or t - pv[0] <= _RECENT_S:
+                                hit = True
+                if hit:
+                    until = t + cfg.post_hold_s
+                    if st.auto_until.get(ch, float("-inf")) < until:
+                        st.auto_until[ch] = until
+                    st.any_until = max(st.any_until, until)
+                    st.cache_t = float("nan")
+                    if st.note_until.get(ch, float("-inf")) >= t or ch in st.ignored:
+                        st.sig_since.pop(ch, None)
+                    elif ch not in st.sig_since:
+                        st.sig_since[ch] = t
+                else:
+                    st.sig_since.pop(ch, None)
+                    st.ignored.pop(ch, None)
+                    for p in ps:
+                        if p in new:
+                            v = fresh.get(p)
+                            if v is not None:
+                                st.prev[p] = (t, v)
+        return self.excluded(st, t)
+
+    def excluded(self, st: ArtifactState, t: float) -> frozenset[str]:
+        if t > st.any_until:
+            return EMPTY
+        if t == st.cache_t:
+            return st.cache
+        out: set[str] = set()
+        for ch, until in st.note_until.items():
+            if until >= t:
+                out |= self.channels[ch]
+        for ch, until in st.auto_until.items():
+            if until >= t:
+                out |= self.channels[ch]
+        res = frozenset(out) if out else EMPTY
+        st.cache_t = t
+        st.cache = res
+        return res
+
+    def suspected(self, st: ArtifactState, t: float) -> list[str]:
+        """Channels whose unexplained signature has lasted ``suspected_after_s``."""
+        after = self.cfg.suspected_after_s
+        return [ch for ch, s in st.sig_since.items() if t - s >= after]
