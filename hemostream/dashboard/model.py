@@ -1,0 +1,186 @@
+"""The dashboard's picture of a unit, built only from what the service publishes.
+
+:class:`UnitView` takes the messages of the wire format's output topics (``derived``,
+``alarm``) — and, where it sees them, ``note`` input messages — whether they arrive from a
+broker (``hemostream watch``) or straight from an in-process pipeline (``hemostream demo``).
+It keeps, per bed, the newest value of every parameter with its measurement time, the trend
+direction, the current alarm state, recent alarm events, notes, the latest fluid-challenge
+result and pattern read-out, and a short history of MAP and CO for the trend strips.
+Nothing here reads a clock: the caller says what time it is.
+"""
+
+from __future__ import annotations
+
+from collections import deque
+from dataclasses import dataclass, field
+from datetime import datetime
+from typing import Any
+
+from ..core.config import DEFAULT_MAX_AGE
+
+#: how long a derived value stays current without a new publication (seconds)
+DERIVED_MAX_AGE = 30.0
+#: trend strip: 30 minutes at one point per 30 seconds
+STRIP_SECONDS = 30 * 60
+STRIP_STEP = 30.0
+
+PRIORITY_RANK = {"high": 3, "medium": 2, "low": 1, "info": 0}
+
+
+def parse_time(text: str | None) -> float | None:
+    if not text:
+        return None
+    try:
+        return datetime.fromisoformat(text).timestamp()
+    except (TypeError, ValueError):
+        return None
+
+
+@dataclass
+class Reading:
+    value: float
+    time: float
+
+    def age(self, now: float) -> float:
+        return max(0.0, now - self.time)
+
+
+@dataclass
+class BedState:
+    key: str                                   # "UNIT/BED"
+    values: dict[str, Reading] = field(default_factory=dict)
+    max_age: dict[str, float] = field(default_factory=dict)
+    trends: dict[str, str] = field(default_factory=dict)
+    status: dict[str, str] = field(default_factory=dict)   # non-valid channel statuses
+    alarms: list[dict] = field(default_factory=list)      # active, from the retained state
+    history: deque = field(default_factory=lambda: deque(maxlen=200))   # alarm events
+    notes: deque = field(default_factory=lambda: deque(maxlen=50))
+    fluid_challenge: dict | None = None
+    profile: str | None = None
+    strip_map: deque = field(default_factory=lambda: deque(maxlen=int(STRIP_SECONDS / STRIP_STEP)))
+    strip_co: deque = field(default_factory=lambda: deque(maxlen=int(STRIP_SECONDS / STRIP_STEP)))
+    last_strip: float = float("-inf")
+    last_time: float = float("-inf")
+
+    @property
+    def bed(self) -> str:
+        return self.key.split("/", 1)[1]
+
+    def reading(self, param: str, now: float) -> tuple[Reading | None, bool]:
+        """(reading, stale): a value older than its expected interval is stale."""
+        r = self.values.get(param)
+        if r is None:
+            return None, False
+        limit = self.max_age.get(param, DEFAULT_MAX_AGE.get(param, DERIVED_MAX_AGE))
+        return r, r.age(now) > limit
+
+    def top_alarm(self) -> dict | None:
+        return self.alarms[0] if self.alarms else None
+
+
+class UnitView:
+    """All beds of the unit(s) being watched, fed with (topic, payload) messages."""
+
+    def __init__(self, max_age: dict[str, float] | None = None) -> None:
+        self.beds: dict[str, BedState] = {}
+        self.max_age = dict(DEFAULT_MAX_AGE)
+        if max_age:
+            self.max_age.update(max_age)
+        self.messages = 0
+        self.newest = float("-inf")            # newest event time seen
+        self.service: dict[str, Any] = {}      # last status / health message
+
+    def bed(self, key: str) -> BedState:
+        b = self.beds.get(key)
+        if b is None:
+            b = self.beds[key] = BedState(key, max_age=self.max_age)
+        return b
+
+    def sorted_beds(self) -> list[BedState]:
+        return [self.beds[k] for k in sorted(self.beds)]
+
+    def alarm_list(self) -> list[tuple[BedState, dict]]:
+        """Every active alarm of the unit, highest priority first, then newest first."""
+        items = [(b, a) for b in self.beds.values() for a in b.alarms]
+        items.sort(key=lambda ba: (-PRIORITY_RANK.get(ba[1].get("priority"), 0),
+                                   -(ba[1].get("since") or 0), ba[0].key))
+        return items
+
+    # ------------------------------------------------------------------ feeding
+
+    def apply(self, topic: str, payload: Any) -> None:
+        """Take one published (or observed input) message. Unknown shapes are ignored."""
+        parts = topic.split("/")
+        if not isinstance(payload, dict):
+            return
+        if len(parts) == 4 and parts[0] == "hemo" and parts[1] == "_svc":
+            self.service = payload
+            return
+        if len(parts) != 4 or parts[0] != "hemo":
+            return
+        key = f"{parts[1]}/{parts[2]}"
+        kind = parts[3]
+        self.messages += 1
+        if kind == "derived":
+            self._derived(self.bed(key), payload)
+        elif kind == "alarm":
+            self._alarm(self.bed(key), payload)
+        elif kind == "note":
+            b = self.bed(key)
+            t = parse_time(payload.get("time"))
+            b.notes.append({"time": t, "kind": payload.get("kind"),
+                            "volume_ml": payload.get("volume_ml"), "param": payload.get("param"),
+                            "by": payload.get("by")})
+
+    def _derived(self, b: BedState, p: dict) -> None:
+        t = parse_time(p.get("time"))
+        if t is None:
+            return
+        b.last_time = max(b.last_time, t)
+        self.newest = max(self.newest, t)
+        for name, v in (p.get("values") or {}).items():
+            if isinstance(v, int | float):
+                b.values[name] = Reading(float(v), t)
+        for name, pair in (p.get("measured") or {}).items():
+            if isinstance(pair, list) and len(pair) == 2 and isinstance(pair[0], int | float):
+                mt = parse_time(pair[1])
+                if mt is not None:
+                    old = b.values.get(name)
+                    if old is None or mt >= old.time:
+                        b.values[name] = Reading(float(pair[0]), mt)
+        b.status = dict(p.get("status") or {})
+        b.trends.update(p.get("trends") or {})
+        if t - b.last_strip >= STRIP_SECONDS / b.strip_map.maxlen:
+            b.last_strip = t
+            m = self._current(b, ("ABP_MEAN", "MAP", "NIBP_MEAN"), t)
+            c = self._current(b, ("CO",), t)
+            b.strip_map.append(m)
+            b.strip_co.append(c)
+
+    def _current(self, b: BedState, names: tuple[str, ...], now: float) -> float | None:
+        for n in names:
+            r, stale = b.reading(n, now)
+            if r is not None and not stale:
+                return r.value
+        return None
+
+    def _alarm(self, b: BedState, p: dict) -> None:
+        if "state" in p and isinstance(p["state"], dict):
+            alarms = [a for a in p["state"].get("alarms", []) if isinstance(a, dict)]
+            alarms.sort(key=lambda a: (-PRIORITY_RANK.get(a.get("priority"), 0),
+                                       -(a.get("since") or 0)))
+            b.alarms = alarms
+            t = parse_time(p.get("time"))
+            if t is not None:
+                self.newest = max(self.newest, t)
+        ev = p.get("event")
+        if isinstance(ev, dict):
+            ev = dict(ev)
+            ev["time_s"] = parse_time(ev.get("time"))
+            b.history.append(ev)
+            if ev.get("rule") == "fluid_challenge" and ev.get("transition") == "result":
+                b.fluid_challenge = ev
+            elif ev.get("transition") == "profile":
+                details = ev.get("details") or {}
+                b.profile = details.get("text") or details.get("profile_text") \
+                    or details.get("profile")

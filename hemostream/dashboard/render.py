@@ -1,0 +1,391 @@
+"""Drawing the unit view with rich: bed tiles, the unit alarm list, one bed's detail.
+
+Colours follow the IEC 60601-1-8 convention for alarm priority (high red, medium yellow,
+low cyan). A new (unacknowledged) alarm is drawn bold and blinking; an acknowledged one
+steady and dim, an audio-paused one with a "paused" mark; technical conditions are labelled
+"technical" and drawn in italics so they read differently from physiological ones. Values
+older than their expected interval are drawn dim and struck through with their age, never
+as current.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from datetime import datetime, timezone
+from typing import Any
+
+from rich.console import Group, RenderableType
+from rich.panel import Panel
+from rich.table import Table
+from rich.text import Text
+
+from .model import BedState, UnitView
+
+CAUTION = ("Secondary display and notification aid, not a medical device: confirm every "
+           "value and alarm at the bedside monitor.")
+CAUTION_SHORT = "Secondary aid, not a medical device. Confirm at the bedside monitor."
+KEYS = "arrows move · enter details · a acknowledge · p pause audio · esc back · q quit"
+
+PRIORITY_STYLE = {"high": "red", "medium": "yellow", "low": "cyan", "info": "white"}
+ARROW = {"rising": "↑", "falling": "↓", "steady": "→"}
+SPARK = "▁▂▃▄▅▆▇█"
+TILE_HEIGHT = 8
+TILE_MIN_WIDTH = 38
+
+# parameter -> (label, format) for the detail table and the tiles
+FMT = {"HR": "{:.0f}", "PR": "{:.0f}", "SPO2": "{:.0f}", "RR": "{:.0f}", "TEMP": "{:.1f}",
+       "CVP": "{:.0f}", "PAWP": "{:.0f}", "CO": "{:.1f}", "CI": "{:.1f}", "SV": "{:.0f}",
+       "SVI": "{:.0f}", "SVR": "{:.0f}", "SVRI": "{:.0f}", "PVR": "{:.0f}", "SI": "{:.2f}",
+       "MSI": "{:.2f}", "BSA": "{:.2f}", "LVSWI": "{:.0f}", "RVSWI": "{:.0f}"}
+UNITS = {"HR": "/min", "PR": "/min", "RR": "/min", "SPO2": "%", "TEMP": "Cel", "CO": "L/min",
+         "CI": "L/min/m2", "SV": "mL", "SVI": "mL/m2", "SVR": "dyn.s/cm5",
+         "SVRI": "dyn.s.m2/cm5", "PVR": "dyn.s/cm5", "BSA": "m2", "LVSWI": "g.m/m2",
+         "RVSWI": "g.m/m2", "SI": "", "MSI": "", "MAP": "mm[Hg]", "PP": "mm[Hg]"}
+
+
+@dataclass
+class Screen:
+    """Everything around the view that the header shows."""
+
+    unit: str
+    source: str
+    connected: bool = True
+    rate: float = 0.0            # messages per second
+    lag_s: float | None = None
+    operator: str | None = None
+    message: str = ""            # last key result, e.g. "acknowledged ..."
+
+
+def fmt_age(seconds: float) -> str:
+    """Short age: 12s, 4m, 2h.
+
+    >>> fmt_age(12.3), fmt_age(250), fmt_age(7300)
+    ('12s', '4m', '2h')
+    """
+    if seconds < 60:
+        return f"{seconds:.0f}s"
+    if seconds < 3600:
+        return f"{seconds // 60:.0f}m"
+    return f"{seconds // 3600:.0f}h"
+
+
+def sparkline(values, width: int) -> str:
+    """Unicode block sparkline of the last ``width`` values; gaps (None) as spaces.
+
+    >>> sparkline([1, 2, 3, None, 3], 5)
+    '▁▄█ █'
+    """
+    vals = list(values)[-width:]
+    nums = [v for v in vals if v is not None]
+    if not nums:
+        return " " * len(vals)
+    lo, hi = min(nums), max(nums)
+    span = hi - lo or 1.0
+    return "".join(" " if v is None else SPARK[min(7, int((v - lo) / span * 7.999))]
+                   for v in vals)
+
+
+def value_text(b: BedState, param: str, now: float, show_age_after: float = 10.0,
+               fmt: str | None = None) -> Text:
+    """A value with its trend arrow; dim and struck through with its age when stale."""
+    r, stale = b.reading(param, now)
+    if r is None:
+        return Text("--", style="dim")
+    s = (fmt or FMT.get(param, "{:.0f}")).format(r.value)
+    t = Text(s, style="dim strike" if stale else "bold")
+    if b.status.get(param) and b.status[param] != "valid":
+        t.append(f" {b.status[param]}", style="magenta")
+    arrow = ARROW.get(b.trends.get(param, ""), "")
+    if arrow and not stale:
+        t.append(arrow)
+    if stale:
+        t.append(f" stale {fmt_age(r.age(now))}", style="dim")
+    elif r.age(now) >= show_age_after:
+        t.append(f" {fmt_age(r.age(now))}", style="dim")
+    return t
+
+
+def pressure_text(b: BedState, now: float) -> Text:
+    """Arterial pressure as sys/dia (mean) with its source: line preferred over cuff."""
+    for src, (s, d, m), label in (("line", ("ABP_SYS", "ABP_DIA", "ABP_MEAN"), "ABP"),
+                                  ("cuff", ("NIBP_SYS", "NIBP_DIA", "NIBP_MEAN"), "NIBP")):
+        rs, stale = b.reading(s, now)
+        if rs is None:
+            continue
+        rd, _ = b.reading(d, now)
+        rm, _ = b.reading(m, now)
+        mean = rm.value if rm is not None else (b.values["MAP"].value if "MAP" in b.values
+                                                else None)
+        txt = f"{rs.value:.0f}/{rd.value:.0f}" if rd is not None else f"{rs.value:.0f}/--"
+        if mean is not None:
+            txt += f" ({mean:.0f})"
+        t = Text.assemble((f"{label} ", "dim"), (txt, "dim strike" if stale else "bold"))
+        arrow = ARROW.get(b.trends.get("MAP", ""), "")
+        if arrow and not stale:
+            t.append(arrow)
+        t.append(f" {src}", style="dim")
+        age = rs.age(now)
+        if stale:
+            t.append(f" stale {fmt_age(age)}", style="dim")
+        elif age >= 10:
+            t.append(f" {fmt_age(age)}", style="dim")
+        return t
+    return Text("ABP --", style="dim")
+
+
+def _pair(label: str, value: Text) -> Text:
+    return Text.assemble((f"{label} ", "dim"), value)
+
+
+def alarm_label(a: dict) -> Text:
+    """One alarm as text, styled by priority and state."""
+    pr = a.get("priority", "low")
+    color = PRIORITY_STYLE.get(pr, "white")
+    acked = a.get("acknowledged")
+    paused = a.get("audio_paused_until")
+    style = f"{color} dim" if acked else f"bold {color} blink"
+    if a.get("category") == "technical":
+        style += " italic"
+    t = Text(f"{pr.upper()} ", style=style)
+    name = a.get("rule", "?")
+    if a.get("category") == "technical":
+        name = f"technical: {name}"
+    t.append(name, style=style)
+    if acked:
+        t.append(" (acknowledged)", style="dim")
+    elif paused:
+        t.append(" (audio paused)", style=color)
+    if a.get("latched"):
+        t.append(" latched", style="dim")
+    return t
+
+
+def tile(b: BedState, now: float, width: int, selected: bool) -> Panel:
+    lines = [
+        Text.assemble(_pair("HR", value_text(b, "HR", now)), "  ",
+                      _pair("SpO2", value_text(b, "SPO2", now)), "  ",
+                      _pair("SI", value_text(b, "SI", now))),
+        pressure_text(b, now),
+        Text.assemble(_pair("CVP", value_text(b, "CVP", now)), "  ",
+                      _pair("CO", value_text(b, "CO", now)), "  ",
+                      _pair("CI", value_text(b, "CI", now))),
+        Text.assemble(_pair("SVR", value_text(b, "SVR", now)), "  ", readout_short(b)),
+    ]
+    strip_w = max(10, width - 10)
+    lines.append(Text.assemble(("MAP ", "dim"), (sparkline(b.strip_map, strip_w), "green")))
+    lines.append(Text.assemble(("CO  ", "dim"), (sparkline(b.strip_co, strip_w), "green")))
+    top = b.top_alarm()
+    border = "white"
+    subtitle = None
+    if top is not None:
+        border = PRIORITY_STYLE.get(top.get("priority"), "white")
+        if top.get("acknowledged"):
+            border += " dim"
+        subtitle = alarm_label(top)
+        if len(b.alarms) > 1:
+            subtitle.append(f" +{len(b.alarms) - 1}", style="dim")
+    title = Text(b.bed, style="reverse bold" if selected else "bold")
+    for line in lines:
+        line.truncate(width - 4, overflow="ellipsis")
+        line.no_wrap = True
+    return Panel(Group(*lines), title=title, title_align="left", subtitle=subtitle,
+                 subtitle_align="right", border_style=border, height=TILE_HEIGHT, width=width,
+                 padding=(0, 1))
+
+
+def _outcome(d: dict) -> str:
+    out = d.get("outcome")
+    if out:
+        return str(out).replace("_", " ")
+    resp = d.get("responsive")
+    return "responsive" if resp else "not responsive" if resp is not None else "result"
+
+
+def readout_short(b: BedState) -> Text:
+    fc = b.fluid_challenge
+    if fc is not None:
+        d = fc.get("details") or {}
+        resp = d.get("responsive")
+        ch = d.get("change_pct")
+        t = Text.assemble(("bolus: ", "dim"))
+        word = _outcome(d)
+        t.append(word + (f" {ch:+.0f}%" if isinstance(ch, int | float) else ""),
+                 style="green" if resp else "yellow")
+        return t
+    if b.profile:
+        return Text(b.profile, style="dim")
+    return Text("")
+
+
+def header(scr: Screen, view: UnitView, now: float) -> Text:
+    clock = datetime.fromtimestamp(now, timezone.utc).strftime("%Y-%m-%d %H:%M:%S UTC") \
+        if now > 0 else "--"
+    conn = Text("connected", style="green") if scr.connected else \
+        Text("DISCONNECTED", style="bold red reverse")
+    t = Text.assemble(("hemostream ", "bold"), (f"unit {scr.unit}", "bold cyan"), "  ", clock,
+                      "  ", f"{scr.source} ", conn,
+                      f"  {len(view.beds)} beds  {scr.rate:.0f} msg/s")
+    if scr.lag_s is not None:
+        t.append(f"  lag {scr.lag_s:.1f}s")
+    if scr.operator:
+        t.append(f"  operator {scr.operator}", style="dim")
+    t.no_wrap = True
+    return t
+
+
+def footer(scr: Screen, width: int) -> Group:
+    c = Text(CAUTION if width >= len(CAUTION) else CAUTION_SHORT, style="bold yellow")
+    k = Text(KEYS, style="dim")
+    if scr.message:
+        k = Text(scr.message, style="bold")
+    c.truncate(width, overflow="ellipsis")
+    k.truncate(width, overflow="ellipsis")
+    return Group(c, k)
+
+
+def alarm_table(view: UnitView, now: float, rows: int, width: int) -> Table:
+    t = Table(box=None, pad_edge=False, show_edge=False, header_style="bold")
+    t.add_column("bed", no_wrap=True, overflow="ellipsis", min_width=8)
+    t.add_column("alarm", no_wrap=True, overflow="ellipsis", min_width=24,
+                 max_width=max(24, width - 30))
+    t.add_column("since", no_wrap=True, min_width=8)
+    t.add_column("value", no_wrap=True, min_width=6)
+    items = view.alarm_list()
+    if len(items) > rows:
+        shown, more = items[:max(0, rows - 1)], len(items) - max(0, rows - 1)
+    else:
+        shown, more = items, 0
+    for b, a in shown:
+        since = a.get("since")
+        v = a.get("value")
+        t.add_row(b.bed, alarm_label(a),
+                  fmt_age(now - since) + " ago" if isinstance(since, int | float) else "",
+                  f"{v:.3g}" if isinstance(v, int | float) else "")
+    if not items:
+        t.add_row("", Text("no active alarms", style="dim"), "", "")
+    elif more:
+        t.add_row("", Text(f"... and {more} more", style="dim"), "", "")
+    return t
+
+
+def unit_screen(view: UnitView, scr: Screen, now: float, width: int, height: int,
+                selected: int = 0) -> RenderableType:
+    """The whole unit: header, as many bed tiles as fit, the alarm list, the footer.
+
+    Tiles come first: the alarm list takes what is left, but at least its heading, its
+    column names and one row (at 80x24 that leaves room for four tiles).
+    """
+    beds = view.sorted_beds()
+    cols = max(1, width // TILE_MIN_WIDTH)
+    tile_w = width // cols
+    needed_rows = max(1, -(-len(beds) // cols))
+    tile_rows = max(1, min(needed_rows, (height - 3 - 3) // TILE_HEIGHT))
+    per_page = cols * tile_rows
+    page = (selected // per_page) if per_page else 0
+    shown = beds[page * per_page:(page + 1) * per_page]
+    grid = Table.grid(padding=0)
+    for _ in range(cols):
+        grid.add_column(width=tile_w)
+    for r in range(0, len(shown), cols):
+        grid.add_row(*[tile(b, now, tile_w, page * per_page + r + i == selected)
+                       for i, b in enumerate(shown[r:r + cols])])
+    used_rows = max(1, -(-len(shown) // cols))
+    alarm_rows = max(1, height - 3 - used_rows * TILE_HEIGHT - 2)
+    n_alarms = len(view.alarm_list())
+    heading = Text(f"alarms ({n_alarms})", style="bold")
+    if len(beds) > per_page:
+        heading.append(f"   beds {page * per_page + 1}-{page * per_page + len(shown)} of "
+                       f"{len(beds)} (page {page + 1}/{(len(beds) - 1) // per_page + 1})",
+                       style="dim")
+    parts: list[RenderableType] = [header(scr, view, now)]
+    parts.append(grid if beds else Text("waiting for data ...", style="dim"))
+    parts.append(heading)
+    parts.append(alarm_table(view, now, alarm_rows, width))
+    parts.append(footer(scr, width))
+    return Group(*parts)
+
+
+DETAIL_PARAMS = ("HR", "PR", "ABP_SYS", "ABP_DIA", "ABP_MEAN", "NIBP_SYS", "NIBP_DIA",
+                 "NIBP_MEAN", "MAP", "PP", "CVP", "PAP_SYS", "PAP_DIA", "PAP_MEAN", "PAWP",
+                 "CO", "CI", "SV", "SVI", "SVR", "SVRI", "PVR", "LVSWI", "RVSWI", "SI", "MSI",
+                 "SPO2", "RR", "TEMP", "BSA")
+
+
+def bed_screen(view: UnitView, scr: Screen, b: BedState, now: float, width: int, height: int,
+               alarm_index: int = 0) -> RenderableType:
+    """One bed: every parameter with age and trend, its alarms, history and notes."""
+    params = Table(box=None, header_style="bold", pad_edge=False)
+    for col in ("param", "value", "unit", "age", "trend"):
+        params.add_column(col, no_wrap=True)
+    for p in DETAIL_PARAMS:
+        r, stale = b.reading(p, now)
+        if r is None:
+            continue
+        unit = UNITS.get(p, "mm[Hg]")
+        params.add_row(p, Text(FMT.get(p, "{:.0f}").format(r.value),
+                               style="dim strike" if stale else "bold"),
+                       unit, ("stale " if stale else "") + fmt_age(r.age(now)),
+                       b.trends.get(p, ""))
+    alarms = Table(box=None, header_style="bold", pad_edge=False, expand=True)
+    alarms.add_column("", width=1)
+    alarms.add_column("active alarm", no_wrap=True, overflow="ellipsis")
+    alarms.add_column("since", no_wrap=True)
+    for i, a in enumerate(b.alarms):
+        since = a.get("since")
+        alarms.add_row(">" if i == alarm_index else "", alarm_label(a),
+                       fmt_age(now - since) + " ago" if isinstance(since, int | float) else "")
+    if not b.alarms:
+        alarms.add_row("", Text("none", style="dim"), "")
+    hist = Table(box=None, header_style="bold", pad_edge=False, expand=True)
+    for col in ("time", "event", "by"):
+        hist.add_column(col, no_wrap=True, overflow="ellipsis")
+    for ev in list(b.history)[-max(3, height // 4):][::-1]:
+        ts = ev.get("time_s")
+        hist.add_row(datetime.fromtimestamp(ts, timezone.utc).strftime("%H:%M:%S") if ts
+                     else "", f"{ev.get('rule')} {ev.get('transition')}", ev.get("by") or "")
+    notes = Table(box=None, header_style="bold", pad_edge=False, expand=True)
+    for col in ("time", "note"):
+        notes.add_column(col, no_wrap=True, overflow="ellipsis")
+    for n in list(b.notes)[-5:][::-1]:
+        ts = n.get("time")
+        what = n.get("kind") or ""
+        if n.get("volume_ml"):
+            what += f" {n['volume_ml']:.0f} mL"
+        if n.get("param"):
+            what += f" ({n['param']})"
+        notes.add_row(datetime.fromtimestamp(ts, timezone.utc).strftime("%H:%M:%S") if ts
+                      else "", what)
+    side = Group(Text("alarms", style="bold"), alarms, Text(""),
+                 Text("read-outs", style="bold"), readout_long(b), Text(""),
+                 Text("alarm history", style="bold"), hist, Text(""),
+                 Text("notes", style="bold"), notes)
+    body = Table.grid(padding=(0, 2), expand=True)
+    body.add_column(width=min(44, width // 2))
+    body.add_column()
+    body.add_row(params, side)
+    return Group(header(scr, view, now),
+                 Panel(body, title=Text(f"{b.key} detail", style="bold"), title_align="left",
+                       height=max(8, height - 3)),
+                 footer(scr, width))
+
+
+def readout_long(b: BedState) -> Text:
+    t = Text()
+    fc = b.fluid_challenge
+    if fc is not None:
+        d = fc.get("details") or {}
+        parts = []
+        for k, label in (("baseline", "before"), ("after", "after"),
+                         ("change_pct", "change %"), ("cvp_change", "CVP change")):
+            v = d.get(k)
+            if isinstance(v, int | float):
+                parts.append(f"{label} {v:.1f}")
+        resp = d.get("responsive")
+        t.append(f"fluid challenge: {_outcome(d)}", style="green" if resp else "yellow")
+        if parts:
+            t.append(" (" + ", ".join(parts) + ")")
+        t.append("\n")
+    t.append(f"pattern: {b.profile}" if b.profile else "pattern: none",
+             style="" if b.profile else "dim")
+    t.append("\n(information, not a diagnosis)", style="dim")
+    return t
