@@ -90,7 +90,7 @@ def cmd_query(args) -> int:
     try:
         engine = open_engine(url, create=False)
         n = query.write(query.rows(engine, args.kind, args.bed, args.param, since, args.limit),
-                        args.format)
+                        args.format, kind=args.kind)
     except StoreError as e:
         err.print(f"[red]error:[/] {e}", highlight=False)
         return 1
@@ -141,7 +141,9 @@ def build_parser() -> argparse.ArgumentParser:
 
     from .query import KINDS
     q = sub.add_parser("query", help="list stored rows", description="List stored rows, "
-                       "oldest first. Times are RFC 3339 UTC; values are in canonical units.")
+                       "oldest first. Times are RFC 3339 UTC; values are in canonical units. "
+                       "The table shows the main columns; jsonl and csv carry every field "
+                       "(provenance of derived values, alarm details, rejected bytes).")
     q.add_argument("kind", choices=KINDS)
     q.add_argument("--db", metavar="URL", help="database URL (default: the config's store.url)")
     q.add_argument("--config", metavar="FILE", help="TOML configuration")

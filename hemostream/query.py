@@ -88,7 +88,20 @@ def rows(engine, kind: str, bed: str | None = None, param: str | None = None,
             yield out
 
 
-def write(rows_iter, fmt: str, stream: IO[str] = sys.stdout, console=None) -> int:
+#: the narrower set of columns the table format shows (jsonl and csv carry everything)
+TABLE_COLUMNS: dict[str, tuple[str, ...]] = {
+    "observations": ("time", "bed", "param", "value", "unit", "status", "late"),
+    "derived": ("time", "bed", "param", "value", "unit"),
+    "notes": ("time", "bed", "kind", "param", "volume_ml", "by"),
+    "alarms": ("time", "bed", "rule", "priority", "transition", "by"),
+    "admissions": ("time", "bed", "height_cm", "weight_kg", "bsa_m2", "discharged"),
+    "commands": ("time", "bed", "action", "alarm", "by", "result"),
+    "rejected": ("rx", "topic", "category", "reason"),
+}
+
+
+def write(rows_iter, fmt: str, stream: IO[str] = sys.stdout, console=None,
+          kind: str | None = None) -> int:
     n = 0
     if fmt == "jsonl":
         for r in rows_iter:
@@ -110,11 +123,23 @@ def write(rows_iter, fmt: str, stream: IO[str] = sys.stdout, console=None) -> in
 
     console = console or Console()
     table = None
+    cols = TABLE_COLUMNS.get(kind or "")
     for r in rows_iter:
-        r.pop("raw", None)          # bytes are for jsonl/csv; the table shows the reason
+        if "care_unit" in r:
+            r["bed"] = f"{r.pop('care_unit')}/{r['bed']}"
+        if cols:
+            r = {c: r.get(c) for c in cols}
+        for tk in ("time", "rx"):      # compact in the table: MM-DD HH:MM:SS (UTC)
+            if isinstance(r.get(tk), str) and len(r[tk]) >= 19:
+                r[tk] = r[tk][5:10] + " " + r[tk][11:19]
         if table is None:
-            table = Table(*r.keys(), show_lines=False)
-            table.columns[0].no_wrap = True
+            from rich import box
+            table = Table(*r.keys(), box=box.SIMPLE_HEAD, pad_edge=False,
+                          caption="times UTC", caption_justify="left")
+            for c in table.columns[:-1]:
+                c.no_wrap = True
+            table.columns[-1].overflow = "fold"
+            table.columns[-1].min_width = 12
         table.add_row(*(_cell(v) for v in r.values()))
         n += 1
     if table is None:

@@ -161,9 +161,8 @@ def replay_file(path: str | Path, db_url: str | None = None, config: Config | No
 
 
 def make_rules(cfg: Config) -> Any:
-    """The rules engine for ``cfg``, or None while the rules layer is not part of the build."""
-    rules_cfg = getattr(cfg, "rules", None)
-    if rules_cfg is None:
+    """The rules engine for ``cfg`` (None when ``[rules] enabled = false``)."""
+    if not cfg.rules.enabled:
         return None
     from .core.rules import RulesEngine
-    return RulesEngine(rules_cfg)
+    return RulesEngine(cfg.rules)

@@ -241,16 +241,19 @@ def load_resume(engine: Engine, recent: int = 200_000) -> Resume:
                   beds=beds, messages=known)
 
 
-_SQL_CACHE: dict[tuple[str, str, tuple[str, ...]], str] = {}
+_SQL_CACHE: dict[tuple[str, str, tuple[str, ...]], tuple[str, tuple[str, ...]]] = {}
 
 
-def _insert_sql(engine: Engine, name: str, cols: tuple[str, ...]) -> str:
+def _insert_sql(engine: Engine, name: str, cols: tuple[str, ...]) -> tuple[str, tuple[str, ...]]:
+    """The dialect's INSERT for these columns, and the order its positional parameters take."""
     key = (engine.dialect.name, name, cols)
-    sql = _SQL_CACHE.get(key)
-    if sql is None:
-        sql = _SQL_CACHE[key] = str(insert(TABLES[name]).compile(
-            dialect=engine.dialect, column_keys=list(cols)))
-    return sql
+    hit = _SQL_CACHE.get(key)
+    if hit is None:
+        compiled = insert(TABLES[name]).compile(dialect=engine.dialect,
+                                                column_keys=list(cols))
+        order = tuple(compiled.positiontup or cols)
+        hit = _SQL_CACHE[key] = (str(compiled), order)
+    return hit
 
 
 def write_rows(engine: Engine, rows: dict[str, list[dict]]) -> None:
@@ -266,11 +269,12 @@ def write_rows(engine: Engine, rows: dict[str, list[dict]]) -> None:
             batch = rows.get(name)
             if not batch:
                 continue
-            cols = tuple(batch[0])
-            sql = _insert_sql(engine, name, cols)
-            params = list(map(itemgetter(*cols), batch)) if positional else batch
-            if positional and len(cols) == 1:
-                params = [(p,) for p in params]
+            sql, order = _insert_sql(engine, name, tuple(sorted(batch[0])))
+            if positional:
+                get = itemgetter(*order)
+                params = [(get(r),) for r in batch] if len(order) == 1 else list(map(get, batch))
+            else:
+                params = batch
             conn.exec_driver_sql(sql, params)
 
 

@@ -10,6 +10,7 @@ from typing import Annotated, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 
+from .rules_config import RulesConfig
 from .wire import ID_RE, PARAMS
 
 _STRICT = ConfigDict(extra="forbid")
@@ -132,6 +133,33 @@ class BrokerConfig(BaseModel):
     key_file: str | None = None
     keepalive_s: Annotated[int, Field(gt=0)] = 30
     health_every_s: Annotated[float, Field(gt=0)] = 10.0
+    #: how long the broker keeps hemostream's session (subscriptions and queued messages)
+    #: while hemostream is away (MQTT 5 Session Expiry Interval, seconds)
+    session_expiry_s: Annotated[int, Field(gt=0, le=0xFFFFFFFF)] = 7 * 86400
+    #: unacknowledged QoS 1 messages the broker may have in flight to hemostream (MQTT 5
+    #: Receive Maximum): the back-pressure window towards the broker
+    receive_maximum: Annotated[int, Field(ge=1, le=65535)] = 1000
+    #: larger MQTT packets are not sent to hemostream at all (MQTT 5 Maximum Packet Size);
+    #: payloads over ingest.max_payload_bytes but under this are stored as rejects
+    max_packet_bytes: Annotated[int, Field(ge=1024)] = 1024 * 1024
+    connect_timeout_s: Annotated[float, Field(gt=0)] = 10.0
+    #: reconnect back-off: doubles from min to max, with random jitter
+    reconnect_min_s: Annotated[float, Field(gt=0)] = 0.5
+    reconnect_max_s: Annotated[float, Field(gt=0)] = 30.0
+    #: bounded queue between receiving and processing (messages)
+    queue_size: Annotated[int, Field(ge=1)] = 2000
+    #: a batch goes to the database after this long or this many messages, whichever first;
+    #: messages are acknowledged to the broker when their batch has committed
+    flush_every_s: Annotated[float, Field(gt=0)] = 0.05
+    flush_messages: Annotated[int, Field(ge=1)] = 500
+    #: alarm lifecycle events kept for publishing while the broker is unreachable
+    offline_events: Annotated[int, Field(ge=0)] = 10000
+    #: outgoing QoS 1 messages in flight / queued in the client
+    outgoing_inflight: Annotated[int, Field(ge=1)] = 100
+    outgoing_queue: Annotated[int, Field(ge=0)] = 20000
+    #: SQLite only: "full" syncs every commit to disk before the broker is told (survives a
+    #: power cut); "normal" survives a crash of hemostream but not of the machine
+    sqlite_synchronous: Literal["full", "normal"] = "full"
 
 
 class Config(BaseModel):
@@ -143,3 +171,5 @@ class Config(BaseModel):
     derive: DeriveConfig = Field(default_factory=DeriveConfig)
     store: StoreConfig = Field(default_factory=StoreConfig)
     broker: BrokerConfig = Field(default_factory=BrokerConfig)
+    #: trends, limit and pattern rules, fluid challenges, alarm lifecycle (configs/rules.toml)
+    rules: RulesConfig = Field(default_factory=RulesConfig)
