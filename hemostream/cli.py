@@ -160,6 +160,9 @@ def build_parser() -> argparse.ArgumentParser:
     c.add_argument("files", nargs="+", metavar="FILE")
     c.set_defaults(func=cmd_check_config)
 
+    from .live.cli import add_parsers as add_live
+    add_live(sub)
+
     try:
         from simulators.cli import add_parser as add_simulate
     except ImportError:

@@ -1,0 +1,326 @@
+"""``hemostream demo``: a simulated ward through the live pipeline, with no broker to install.
+
+The ward's messages go through an in-process broker (:mod:`.inproc`: persistent session,
+QoS 1 acknowledgement after the commit, retained alarm state) into the same
+:class:`~hemostream.live.service.Service` that ``hemostream run`` uses, and into a SQLite file.
+``--broker URL`` sends the same stream through a real broker instead. A subscriber of the
+published outputs (derived values, alarm state, health) feeds the live view.
+
+Time: the scenario's times are moved to now. At ``--speed N`` the service runs on a clock
+that goes N times as fast as the wall clock, so measurement times and arrival times stay
+consistent (no clock-skew rejects) and the stored times are the scenario's, moved to now.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import json
+import logging
+import signal
+import sys
+import threading
+import time
+from collections import deque
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable, Iterable, TextIO
+
+from ..core.config import Config
+from ..core.processor import iso
+from .inproc import InprocBroker
+from .publish import (Retimer, _parse, as_record, close_gaps, payload_bytes,
+                      publish_recording_lines)
+from .service import Service, status_topic
+from .transport import TransportError
+
+log = logging.getLogger("hemostream.live.demo")
+
+CAUTION = ("hemostream is a secondary display and notification aid, not a medical device. "
+           "The bedside monitor stays the primary alarm source; confirm every value and alarm "
+           "there.")
+EXAMPLE_RECORDING = (Path(__file__).resolve().parent.parent.parent / "simulators"
+                     / "recordings" / "example-ward.jsonl")
+
+
+def demo_lines(scenario: str | None = None, duration_s: float | None = None,
+               seed: int = 0) -> tuple[list[dict], str]:
+    """The demo ward's recording lines and a sentence saying where they come from.
+
+    From the simulators (``simulators.generate``) when they are installed; otherwise the
+    shipped example recording, and the sentence says so.
+    """
+    why = "the simulators package has no generate() yet"
+    try:
+        import simulators
+        generate = getattr(simulators, "generate")
+    except (ImportError, AttributeError):
+        generate = None
+    if generate is not None:
+        name = scenario or getattr(simulators, "DEMO_SCENARIO", None) or "demo_ward"
+        try:
+            lines = [r for r in (as_record(x) for x in
+                                 generate(name, duration_s=duration_s, seed=seed)) if r]
+            return lines, f"simulated ward (scenario {name!r}, seed {seed})"
+        except Exception as e:  # noqa: BLE001 - say why, and still show something
+            if scenario:
+                raise
+            why = f"the simulators could not make scenario {name!r}: {e}"
+    lines = []
+    with open(EXAMPLE_RECORDING, "rb") as f:
+        for line in f:
+            rec = as_record(line)
+            if rec is not None:
+                lines.append(rec)
+    lines = close_gaps(lines)
+    if duration_s is not None and lines:
+        t0 = _parse(lines[0]["rx"])
+        lines = [r for r in lines if _parse(r["rx"]) - t0 <= duration_s]
+    return lines, f"shipped example recording {EXAMPLE_RECORDING.name} ({why})"
+
+
+class ScaledClock:
+    """Wall-clock epoch seconds from ``start``, running ``speed`` times as fast."""
+
+    def __init__(self, speed: float = 1.0, start: float | None = None) -> None:
+        self.speed = speed
+        self.start = time.time() if start is None else start
+        self._m0 = time.monotonic()
+
+    def __call__(self) -> float:
+        return self.start + (time.monotonic() - self._m0) * self.speed
+
+    def wall_delay(self, t: float) -> float:
+        """Wall seconds until the clock reads ``t``."""
+        return (t - self()) / self.speed
+
+
+@dataclass
+class Summary:
+    """The compact live view: the latest published figures of every bed."""
+
+    beds: dict[str, dict] = field(default_factory=dict)
+    events: deque = field(default_factory=lambda: deque(maxlen=6))
+    health: dict | None = None
+    outputs: int = 0
+
+    def apply(self, topic: str, payload: Any) -> None:
+        if not isinstance(payload, dict):
+            return
+        parts = topic.split("/")
+        if len(parts) != 4:
+            return
+        self.outputs += 1
+        if parts[1] == "_svc":
+            if payload.get("kind") == "health":
+                self.health = payload
+            return
+        b = self.beds.setdefault(f"{parts[1]}/{parts[2]}", {"values": {}, "alarms": None})
+        if parts[3] == "derived":
+            b["time"] = payload.get("time")
+            for p, v in (payload.get("measured") or {}).items():
+                if isinstance(v, list) and v:
+                    b["values"][p] = v[0]
+            b["values"].update(payload.get("values") or {})
+        elif parts[3] == "alarm":
+            if "state" in payload:
+                b["alarms"] = payload["state"]
+            elif "event" in payload:
+                ev = payload["event"]
+                self.events.append(f"{ev.get('time', '')[11:19]} {topic.split('/')[2]} "
+                                   f"{ev.get('rule', ev.get('alarm_id', '?'))} "
+                                   f"{ev.get('transition', '')} ({ev.get('priority', '')})")
+
+    def lines(self) -> list[str]:
+        out = []
+        for key in sorted(self.beds):
+            b = self.beds[key]
+            v = b["values"]
+            shown = " ".join(f"{p} {_fmt(v[p])}" for p in
+                             ("HR", "MAP", "CVP", "CO", "CI", "SVR", "SI", "SPO2") if p in v)
+            st = b["alarms"]
+            alarms = ""
+            if isinstance(st, dict) and st.get("count"):
+                names = [a.get("rule") or a.get("id") or "?" for a in st.get("alarms", [])
+                         if isinstance(a, dict)]
+                alarms = f"  ALARM {st.get('highest')}: {', '.join(names[:3])}"
+            out.append(f"  {key:<18} {shown or '(waiting for values)'}{alarms}")
+        for e in self.events:
+            out.append(f"  event {e}")
+        h = self.health
+        if h:
+            out.append(f"  pipeline: {h.get('messages_per_s', 0):.0f} msg/s, stored "
+                       f"{h.get('stored')}, rejected {h.get('rejected_total')}, duplicates "
+                       f"{h.get('duplicates')}, db write {h['db_write_ms']['last']:.1f} ms")
+        return out
+
+
+def _fmt(v: Any) -> str:
+    if not isinstance(v, (int, float)):
+        return str(v)
+    return f"{v:.2f}" if abs(v) < 10 else f"{v:.0f}"
+
+
+async def _feed_inproc(broker: InprocBroker, lines: list[dict], clock: ScaledClock,
+                       stop: asyncio.Event) -> int:
+    n = 0
+    for rec in lines:
+        if stop.is_set():
+            break
+        if isinstance(rec.get("rx"), str):
+            delay = clock.wall_delay(_parse(rec["rx"]))
+            if delay > 0:
+                try:
+                    await asyncio.wait_for(stop.wait(), delay)
+                    break
+                except asyncio.TimeoutError:
+                    pass
+        broker.publish(rec["topic"], payload_bytes(rec["payload"]), 1, False)
+        n += 1
+    return n
+
+
+async def run_demo(cfg: Config, db_url: str, *, speed: float = 1.0,
+                   duration_s: float | None = None, scenario: str | None = None,
+                   seed: int = 0, broker_url: str | None = None,
+                   out: TextIO = sys.stdout, every_s: float = 2.0,
+                   view: Callable[[str, Any], None] | None = None,
+                   install_signals: bool = True) -> dict:
+    """Run the demo until the stream ends or Ctrl-C; returns a summary dict."""
+    lines, source = demo_lines(scenario, duration_s, seed)
+    clock = ScaledClock(speed)
+    if lines:
+        rt = Retimer(clock.start, 1.0)           # shift only: the clock carries the speed
+        lines = [rt.record(r) for r in lines]
+    print(f"CAUTION: {CAUTION}", file=out)
+    print(f"demo: {len(lines)} messages from the {source}, at {speed:g} x real time, "
+          f"{'through ' + broker_url if broker_url else 'through the in-process broker'}, "
+          f"into {db_url}", file=out)
+    out.flush()
+    stop = asyncio.Event()
+    loop = asyncio.get_running_loop()
+    if install_signals:
+        for sig in (signal.SIGINT, signal.SIGTERM):
+            try:
+                loop.add_signal_handler(sig, stop.set)
+            except (NotImplementedError, RuntimeError):
+                pass
+    summary = Summary()
+    will_topic = status_topic(cfg)
+    offline = json.dumps({"v": 1, "kind": "status", "state": "offline",
+                          "instance": cfg.instance, "reason": "connection lost"}).encode()
+    out_filters = ["hemo/+/+/derived", "hemo/+/+/alarm", f"hemo/_svc/{cfg.instance}/status"]
+
+    def show(topic: str, payload: bytes) -> None:
+        try:
+            p = json.loads(payload)
+        except ValueError:
+            return
+        summary.apply(topic, p)
+        if view is not None:
+            view(topic, p)
+
+    if broker_url is None:
+        broker = InprocBroker()
+        transport = broker.client(cfg.broker.client_id, will=(will_topic, offline),
+                                  clock=clock, receive_maximum=cfg.broker.receive_maximum)
+        watcher = broker.client("hemostream-demo-view", persistent=False)
+    else:
+        from .mqtt import MqttTransport
+        cfg = cfg.model_copy(update={"broker": cfg.broker.model_copy(
+            update={"url": broker_url})})
+        transport = MqttTransport(cfg.broker, will=(will_topic, offline), clock=clock)
+        watcher = MqttTransport(cfg.broker.model_copy(update={
+            "client_id": f"{cfg.broker.client_id}-view"}), persistent=False)
+    svc = Service(cfg, transport, db_url=db_url, clock=clock, log_health=False)
+    svc_task = asyncio.create_task(svc.run())
+
+    async def watch() -> None:
+        while True:
+            try:
+                await watcher.connect()
+                await watcher.subscribe(out_filters, 0)
+                async for m in watcher.messages():
+                    show(m.topic, m.payload)
+            except TransportError as e:
+                log.debug("view: %s", e)
+                await asyncio.sleep(0.5)
+
+    async def ticker() -> None:
+        while True:
+            await asyncio.sleep(every_s)
+            if view is None:
+                stamp = iso(clock())[11:19]
+                print(f"[{stamp}] " + CAUTION.split(".")[0] + ".", file=out)
+                for line in summary.lines():
+                    print(line, file=out)
+                out.flush()
+
+    watch_task = asyncio.create_task(watch())
+    tick_task = asyncio.create_task(ticker())
+    sent = 0
+    try:
+        ready = asyncio.create_task(svc.ready.wait())
+        done, _ = await asyncio.wait({ready, svc_task}, return_when=asyncio.FIRST_COMPLETED)
+        if svc_task in done:
+            ready.cancel()
+        else:
+            if broker_url is None:
+                sent = await _feed_inproc(broker, lines, clock, stop)
+            else:
+                pub = asyncio.create_task(publish_recording_lines(
+                    lines, broker_url, speed, broker=cfg.broker, retime=False, stop=stop))
+                s_done, _ = await asyncio.wait({pub, asyncio.create_task(stop.wait())},
+                                               return_when=asyncio.FIRST_COMPLETED)
+                if pub in s_done:
+                    sent = pub.result().published
+                else:
+                    pub.cancel()
+            # let the pipeline take in what was sent, then stop (or stop at once on Ctrl-C)
+            deadline = time.monotonic() + 10
+            while (not stop.is_set() and svc.health.received < sent
+                   and time.monotonic() < deadline and not svc_task.done()):
+                await asyncio.sleep(0.05)
+    finally:
+        svc.stop()
+        code = await svc_task
+        for t in (watch_task, tick_task):
+            t.cancel()
+        await asyncio.gather(watch_task, tick_task, return_exceptions=True)
+        try:
+            await watcher.disconnect()
+        except Exception:  # noqa: BLE001
+            pass
+    h = svc.health
+    result = {"exit": code, "sent": sent, "received": h.received, "stored": h.stored,
+              "accepted": h.accepted, "duplicates": h.duplicates,
+              "rejected": sum(h.rejected.values()), "db": db_url, "source": source,
+              "fatal": svc.fatal}
+    for line in summary.lines():
+        print(line, file=out)
+    print(f"demo ended: {h.stored} messages stored ({h.accepted} accepted, "
+          f"{sum(h.rejected.values())} rejected with a reason, {h.duplicates} duplicates "
+          f"dropped).", file=out)
+    print(f"The data is in {db_url}; look at it with:\n"
+          f"  hemostream query derived --db {db_url} --limit 20\n"
+          f"  hemostream query alarms --db {db_url}\n"
+          f"  hemostream query rejected --db {db_url}", file=out)
+    out.flush()
+    return result
+
+
+def run_dashboard_thread(view_model, screen_unit: str, clock, send_command,
+                         status) -> tuple[threading.Thread, threading.Event, Any] | None:
+    """Start the rich unit dashboard in a thread, when it is installed and stdout is a
+    terminal; None otherwise (the compact summary is printed instead)."""
+    if not sys.stdout.isatty():
+        return None
+    try:
+        from ..dashboard import Dashboard, Screen
+    except ImportError:
+        return None
+    stop = threading.Event()
+    dash = Dashboard(view_model, Screen(unit=screen_unit, source="demo"), clock=clock,
+                     send_command=send_command, status=status)
+    th = threading.Thread(target=dash.run, args=(stop,), daemon=True, name="dashboard")
+    th.start()
+    return th, stop, dash

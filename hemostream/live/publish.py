@@ -1,0 +1,263 @@
+"""Publish recording lines (the wire format's JSON Lines, or the simulators' dicts) to a broker.
+
+What a bedside gateway does, for the demo, the tests and ``simulate --publish``: each line's
+payload goes to its topic at QoS 1, paced by the recording's arrival times, with times moved
+to the present (a live hemostream rejects measurement times far from its own clock). The
+publisher is at-least-once too: a message whose PUBACK has not come back when the connection
+breaks is sent again after the reconnect, so the broker may see it twice; hemostream drops
+the repeat by its wire format identity.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import json
+import logging
+import time
+import uuid
+from dataclasses import dataclass
+from datetime import datetime, timezone
+from typing import Any, Callable, Iterable
+
+from ..core.config import BrokerConfig
+from ..core.processor import epoch, iso
+from .service import backoff
+from .transport import TransportError
+
+log = logging.getLogger("hemostream.live.publish")
+
+
+def _parse(t: str) -> float:
+    d = datetime.fromisoformat(t)
+    if d.tzinfo is None:
+        d = d.replace(tzinfo=timezone.utc)
+    return epoch(d)
+
+
+def as_record(line: Any) -> dict | None:
+    """A recording line as a dict (from a dict, JSON text or bytes); None when unreadable."""
+    if isinstance(line, dict):
+        return line
+    try:
+        rec = json.loads(line)
+    except (ValueError, TypeError):
+        return None
+    return rec if isinstance(rec, dict) else None
+
+
+class Retimer:
+    """Moves a recording's times to the present.
+
+    Real time (``speed`` 1) shifts every time by one offset, so the first arrival becomes
+    ``start``. Faster than real time compresses the time line by ``speed`` around the first
+    arrival, so measurement times keep pace with a receiver that uses its wall clock.
+
+    >>> r = Retimer(start=1000.0, speed=2.0)
+    >>> r.time(50.0), r.time(60.0)
+    (1000.0, 1005.0)
+    """
+
+    def __init__(self, start: float, speed: float = 1.0) -> None:
+        self.start = start
+        self.speed = speed
+        self.t0: float | None = None
+
+    def time(self, t: float) -> float:
+        if self.t0 is None:
+            self.t0 = t
+        return self.start + (t - self.t0) / self.speed
+
+    def record(self, rec: dict) -> dict:
+        """A retimed copy of a recording line (see :func:`map_times`)."""
+        return map_times(rec, self.time)
+
+
+def map_times(rec: dict, fn: Callable[[float], float]) -> dict:
+    """A copy of a recording line with ``rx``, the payload's ``time`` and each observation's
+    own ``time`` passed through ``fn`` (epoch seconds). Broken payloads pass unchanged."""
+
+    def text(v: Any) -> Any:
+        if not isinstance(v, str):
+            return v
+        try:
+            return iso(fn(_parse(v)))
+        except ValueError:
+            return v
+
+    out = dict(rec)
+    if isinstance(rec.get("rx"), str):
+        out["rx"] = text(rec["rx"])
+    p = rec.get("payload")
+    if isinstance(p, dict):
+        p = dict(p)
+        if "time" in p:
+            p["time"] = text(p["time"])
+        if isinstance(p.get("obs"), list):
+            p["obs"] = [dict(o, time=text(o["time"])) if isinstance(o, dict) and "time" in o
+                        else o for o in p["obs"]]
+        out["payload"] = p
+    return out
+
+
+def close_gaps(recs: list[dict], max_gap_s: float = 5.0, keep_s: float = 1.0) -> list[dict]:
+    """Shorten every silence longer than ``max_gap_s`` between arrivals to ``keep_s``, moving
+    all later times (arrival and measurement) back by the same amount, so a demo does not sit
+    idle through a recording's quiet stretches."""
+    out = []
+    prev = None
+    shift = 0.0
+    for rec in recs:
+        rx = rec.get("rx")
+        if isinstance(rx, str):
+            try:
+                t = _parse(rx)
+            except ValueError:
+                t = None
+            if t is not None:
+                if prev is not None and t - prev > max_gap_s:
+                    shift += t - prev - keep_s
+                prev = t
+        out.append(map_times(rec, lambda x, s=shift: x - s) if shift else rec)
+    return out
+
+
+def payload_bytes(payload: Any) -> bytes:
+    if isinstance(payload, str):
+        return payload.encode("utf-8", "surrogateescape")
+    return json.dumps(payload, separators=(",", ":")).encode()
+
+
+@dataclass
+class PublishSummary:
+    lines: int = 0
+    published: int = 0      # confirmed by the broker (PUBACK)
+    resent: int = 0
+    unreadable: int = 0
+    reconnects: int = 0
+    seconds: float = 0.0
+
+
+async def publish_recording_lines(lines_iter: Iterable[Any], url: str, speed: float | None = 1.0,
+                                  *, broker: BrokerConfig | None = None, retime: bool = True,
+                                  clock: Callable[[], float] = time.time,
+                                  sleep: Callable[[float], Any] = asyncio.sleep,
+                                  window: int = 200, stop: asyncio.Event | None = None,
+                                  client_id: str | None = None,
+                                  max_seconds_down: float = 120.0) -> PublishSummary:
+    """Publish every line to ``url`` at QoS 1 and wait until the broker confirmed them all.
+
+    ``speed``: N x real time by the lines' ``rx``; None or 0 publishes as fast as the window
+    of ``window`` unconfirmed messages allows (times are then moved so the recording ends
+    now). ``broker`` supplies credentials and TLS files (the URL overrides its ``url``).
+    Gives up (TransportError) after ``max_seconds_down`` without a connection.
+    """
+    from .mqtt import MqttTransport
+
+    base = broker or BrokerConfig()
+    cfg = base.model_copy(update={"url": url, "client_id": client_id
+                                  or f"hemostream-pub-{uuid.uuid4().hex[:8]}"})
+    t = MqttTransport(cfg, persistent=False)
+    summary = PublishSummary()
+    recs = [r for r in (as_record(x) for x in lines_iter)]
+    summary.unreadable = sum(r is None for r in recs)
+    recs = [r for r in recs if r is not None and isinstance(r.get("topic"), str)
+            and "payload" in r]
+    summary.lines = len(recs)
+    if not recs:
+        return summary
+    paced = bool(speed)
+    if retime:
+        if paced:
+            rt = Retimer(clock(), speed)
+        else:
+            last = max((_parse(r["rx"]) for r in recs if isinstance(r.get("rx"), str)),
+                       default=None)
+            first = next((_parse(r["rx"]) for r in recs if isinstance(r.get("rx"), str)),
+                         None)
+            rt = Retimer(clock() - ((last - first) if last is not None else 0.0))
+        recs = [rt.record(r) for r in recs]
+    t_start = time.monotonic()
+    unconfirmed: list[tuple[Any, str, bytes]] = []
+    watcher: asyncio.Task | None = None
+    down_since: float | None = None
+    attempt = 0
+
+    async def watch() -> None:          # the message iterator raises when the link breaks
+        try:
+            async for _ in t.messages():
+                pass
+        except TransportError:
+            pass
+
+    async def ensure_connected() -> None:
+        nonlocal watcher, down_since, attempt
+        while not t.connected:
+            if watcher is not None:
+                watcher.cancel()
+                watcher = None
+                await t.drop()
+            try:
+                await t.connect()
+            except TransportError as e:
+                if e.refused:
+                    raise
+                if down_since is None:
+                    down_since = time.monotonic()
+                if time.monotonic() - down_since > max_seconds_down:
+                    raise
+                await asyncio.sleep(backoff(attempt, 0.2, 5.0))
+                attempt += 1
+                continue
+            if summary.reconnects or down_since is not None:
+                summary.reconnects += 1
+            down_since, attempt = None, 0
+            watcher = asyncio.create_task(watch())
+            again = [(topic, data) for _, topic, data in unconfirmed]
+            unconfirmed.clear()
+            for topic, data in again:
+                send(topic, data)
+                summary.resent += 1
+
+    def send(topic: str, data: bytes) -> None:
+        h = t.publish(topic, data, 1, False)
+        unconfirmed.append((h, topic, data))
+
+    def prune() -> None:
+        keep = [u for u in unconfirmed if u[0] is None or not t.published(u[0])]
+        summary.published += len(unconfirmed) - len(keep)
+        unconfirmed[:] = keep
+
+    async def wait_window(limit: int) -> None:
+        while True:
+            prune()
+            if any(u[0] is None for u in unconfirmed) or not t.connected:
+                t.connected = False
+                await ensure_connected()
+                continue
+            if len(unconfirmed) <= limit:
+                return
+            await asyncio.sleep(0.002)
+
+    try:
+        await ensure_connected()
+        wall0 = time.monotonic()
+        rx0 = None
+        for rec in recs:
+            if stop is not None and stop.is_set():
+                break
+            if paced and isinstance(rec.get("rx"), str):
+                rx = _parse(rec["rx"])
+                if rx0 is None:
+                    rx0 = rx
+                delay = (rx - rx0) / (1.0 if retime else speed) - (time.monotonic() - wall0)
+                if delay > 0:
+                    await sleep(delay)
+            await wait_window(window - 1)
+            send(rec["topic"], payload_bytes(rec["payload"]))
+        await wait_window(0)
+    finally:
+        if watcher is not None:
+            watcher.cancel()
+        await t.disconnect()
+        summary.seconds = time.monotonic() - t_start
+    return summary
