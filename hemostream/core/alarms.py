@@ -210,10 +210,9 @@ class AlarmBook:
         a.present = False
         if value is not None:
             a.value = value
-        d = dict(a.details)
         if details:
-            d.update(details)
-        out = [self._ev(a, t, "condition_ended", details=d)]
+            a.details = {**a.details, **details}
+        out = [self._ev(a, t, "condition_ended")]
         if not a.latching or a.acknowledged:
             out.append(self._clear(a, t, "condition_ended"))
         return out

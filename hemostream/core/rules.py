@@ -137,8 +137,22 @@ class _Limit:
         self.spec = spec
 
 
+class _CTerm:
+    """A pattern term with its parameter list resolved once."""
+
+    __slots__ = ("params", "trend", "at_least", "below", "hysteresis", "level")
+
+    def __init__(self, t: Term) -> None:
+        self.params = tuple(t.params)
+        self.trend = t.trend
+        self.at_least = t.at_least
+        self.below = t.below
+        self.hysteresis = t.hysteresis
+        self.level = t.at_least is not None or t.below is not None
+
+
 class _Pattern:
-    __slots__ = ("rule", "cfg", "spec", "trend_inputs", "level_inputs")
+    __slots__ = ("rule", "cfg", "spec", "trend_inputs", "level_inputs", "terms", "tiers")
 
     def __init__(self, rule: str, cfg: PatternRule) -> None:
         self.rule = rule
@@ -155,7 +169,11 @@ class _Pattern:
                 if term.at_least is not None or term.below is not None:
                     level[p] = None
         self.trend_inputs = tuple(trend)
-        self.level_inputs = tuple(level)
+        # a pattern with trend terms is evaluated when one of its trends moves (once per
+        # bucket); a pattern of levels only, whenever one of its levels is new
+        self.level_inputs = tuple(level) if not trend else ()
+        self.terms = tuple(_CTerm(t) for t in cfg.terms)
+        self.tiers = tuple(tuple(_CTerm(t) for t in tier.terms) for tier in cfg.tiers)
 
 
 class _Eval:
@@ -368,6 +386,10 @@ class RulesEngine:
         for p in self._trend_params:
             if p in new and p not in excluded:
                 tr = trends.get(p)
+                if tr is not None and tr.open_start <= t < tr.open_end:
+                    tr._bt.append(t)             # fast path: same bucket as the last sample
+                    tr._bv.append(fresh[p])
+                    continue
                 if tr is None:
                     tr = trends[p] = RobustTrend(tc.window_s, tc.bucket_s, tc.min_points,
                                                  tc.min_span_fraction, tc.gap_reset_s,
@@ -575,7 +597,7 @@ class RulesEngine:
 
     # ================================================================== patterns
 
-    def _term(self, b: _Bed, term: Term, t: float, fresh: dict[str, float],
+    def _term(self, b: _Bed, term: _CTerm, t: float, fresh: dict[str, float],
               excluded: frozenset[str], relaxed: bool) -> tuple[bool | None, dict]:
         tc = self.cfg.trends
         for p in term.params:
@@ -586,7 +608,7 @@ class RulesEngine:
                 if r is None:
                     continue
             v = None
-            if term.at_least is not None or term.below is not None:
+            if term.level:
                 if p in excluded:
                     continue
                 v = fresh.get(p)
@@ -619,7 +641,7 @@ class RulesEngine:
             return ok, info
         return None, {"param": term.params, "no_data": True}
 
-    def _terms(self, b: _Bed, terms: list[Term], t: float, fresh: dict[str, float],
+    def _terms(self, b: _Bed, terms: tuple[_CTerm, ...], t: float, fresh: dict[str, float],
                excluded: frozenset[str], relaxed: bool, infos: list) -> bool | None:
         result: bool | None = True
         for term in terms:
@@ -636,15 +658,15 @@ class RulesEngine:
         c = b.conds.get(pat.rule)
         raised = c.raised if c is not None else 0
         infos: list[dict] = []
-        ok = self._terms(b, pat.cfg.terms, t, fresh, excluded, raised >= 1, infos)
+        ok = self._terms(b, pat.terms, t, fresh, excluded, raised >= 1, infos)
         if ok is None:
             return                    # no data: the condition neither starts nor ends
         level = 0
         if ok:
             level = 1
-            for k, tier in enumerate(pat.cfg.tiers):
+            for k, tier in enumerate(pat.tiers):
                 tinfo: list[dict] = []
-                tok = self._terms(b, tier.terms, t, fresh, excluded, raised >= k + 2, tinfo)
+                tok = self._terms(b, tier, t, fresh, excluded, raised >= k + 2, tinfo)
                 if not tok:
                     break
                 infos += tinfo

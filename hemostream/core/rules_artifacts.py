@@ -31,6 +31,7 @@ from .wire import PARAMS
 
 EMPTY: frozenset[str] = frozenset()
 _RECENT_S = 10.0
+_NINF = float("-inf")
 
 
 class ArtifactState:
@@ -68,10 +69,14 @@ class ArtifactDetector:
                      for ch, v in cfg.flat_pulse_pressure.items()}
         self.outside = {p: (s.low, s.high) for p, s in cfg.signature_outside.items()}
         self.zero_step = dict(cfg.zero_step)
-        # channels that can show a signature, in configuration order
-        self.watch = tuple(ch for ch, ps in self.measured.items()
-                           if ch in self.flat or any(p in self.outside or p in self.zero_step
-                                                     for p in ps))
+        # channels that can show a signature, in configuration order, with their checks:
+        # (channel, ((param, outside range or None, zero step or None), ...), flat check)
+        plan = []
+        for ch, ps in self.measured.items():
+            if ch in self.flat or any(p in self.outside or p in self.zero_step for p in ps):
+                plan.append((ch, tuple((p, self.outside.get(p), self.zero_step.get(p))
+                                       for p in ps), self.flat.get(ch)))
+        self._plan = tuple(plan)
 
     # ------------------------------------------------------------------ notes and statuses
 
@@ -121,53 +126,49 @@ class ArtifactDetector:
                         st.any_until = max(st.any_until, until)
                         st.cache_t = float("nan")
         if cfg.auto_detect:
-            for ch in self.watch:
-                ps = self.measured[ch]
+            for ch, checks, fl in self._plan:
                 hit = False
                 seen = False
-                for p in ps:
-                    if p in new:
-                        seen = True
-                        break
+                for p, rng, step in checks:
+                    if p not in new:
+                        continue
+                    seen = True
+                    v = fresh.get(p)
+                    if v is None:
+                        continue
+                    if rng is not None and not (rng[0] <= v <= rng[1]):
+                        hit = True
+                    if step is not None and -cfg.zero_band <= v <= cfg.zero_band:
+                        pv = st.prev.get(p)
+                        if pv is not None and pv[1] - v >= step:
+                            in_sig = (ch in st.sig_since
+                                      or st.auto_until.get(ch, _NINF) >= t)
+                            if in_sig or t - pv[0] <= _RECENT_S:
+                                hit = True
                 if not seen:
                     continue
-                fl = self.flat.get(ch)
                 if fl is not None and fl[0] in new and fl[1] in new:
                     sys_v, dia_v = fresh.get(fl[0]), fresh.get(fl[1])
                     if sys_v is not None and dia_v is not None and sys_v - dia_v < fl[2]:
                         hit = True
-                for p in ps:
-                    if p not in new:
-                        continue
-                    v = fresh.get(p)
-                    if v is None:
-                        continue
-                    rng = self.outside.get(p)
-                    if rng is not None and not (rng[0] <= v <= rng[1]):
-                        hit = True
-                    step = self.zero_step.get(p)
-                    if step is not None and abs(v) <= cfg.zero_band:
-                        pv = st.prev.get(p)
-                        if pv is not None and pv[1] - v >= step:
-                            in_sig = (ch in st.sig_since
-                                      or st.auto_until.get(ch, float("-inf")) >= t)
-                            if in_sig or t - pv[0] <= _RECENT_S:
-                                hit = True
                 if hit:
                     until = t + cfg.post_hold_s
-                    if st.auto_until.get(ch, float("-inf")) < until:
+                    if st.auto_until.get(ch, _NINF) < until:
                         st.auto_until[ch] = until
-                    st.any_until = max(st.any_until, until)
+                    if until > st.any_until:
+                        st.any_until = until
                     st.cache_t = float("nan")
-                    if st.note_until.get(ch, float("-inf")) >= t or ch in st.ignored:
+                    if st.note_until.get(ch, _NINF) >= t or ch in st.ignored:
                         st.sig_since.pop(ch, None)
                     elif ch not in st.sig_since:
                         st.sig_since[ch] = t
                 else:
-                    st.sig_since.pop(ch, None)
-                    st.ignored.pop(ch, None)
-                    for p in ps:
-                        if p in new:
+                    if st.sig_since:
+                        st.sig_since.pop(ch, None)
+                    if st.ignored:
+                        st.ignored.pop(ch, None)
+                    for p, rng, step in checks:
+                        if step is not None and p in new:
                             v = fresh.get(p)
                             if v is not None:
                                 st.prev[p] = (t, v)

@@ -121,7 +121,8 @@ class RobustTrend:
     """
 
     __slots__ = ("window_s", "bucket_s", "min_points", "min_span_s", "gap_reset_s",
-                 "stale_after_s", "_t", "_v", "_bucket", "_bt", "_bv", "_reading", "_dirty")
+                 "stale_after_s", "_t", "_v", "_bucket", "_bt", "_bv", "_reading", "_dirty",
+                 "open_start", "open_end")
 
     def __init__(self, window_s: float, bucket_s: float, min_points: int,
                  min_span_fraction: float = 0.5, gap_reset_s: float = 180.0,
@@ -139,6 +140,10 @@ class RobustTrend:
         self._bv: list[float] = []    # ... and values
         self._reading: TrendReading | None = None
         self._dirty = False
+        #: time range of the open bucket: a caller may append a sample in it directly with
+        #: :meth:`add_open` (the fast path of :meth:`update`)
+        self.open_start = float("inf")
+        self.open_end = float("-inf")
 
     # ------------------------------------------------------------------ input
 
@@ -148,21 +153,29 @@ class RobustTrend:
 
         A sample older than the open bucket is ignored (it is late for the trend).
         """
-        b = math.floor(t / self.bucket_s)
-        cur = self._bucket
-        if cur is None or b == cur:
-            if cur is None:
-                self._bucket = b
+        if self.open_start <= t < self.open_end:
             self._bt.append(t)
             self._bv.append(v)
             return False
-        if b < cur:
+        b = math.floor(t / self.bucket_s)
+        cur = self._bucket
+        if cur is not None and b <= cur:
+            if b == cur:                 # float edge of the bucket bounds
+                self._bt.append(t)
+                self._bv.append(v)
             return False
-        changed = self._close()
+        changed = self._close() if cur is not None else False
         self._bucket = b
+        self.open_start = b * self.bucket_s
+        self.open_end = (b + 1) * self.bucket_s
         self._bt = [t]
         self._bv = [v]
         return changed
+
+    def add_open(self, t: float, v: float) -> None:
+        """Append a sample known to lie in the open bucket (``open_start <= t < open_end``)."""
+        self._bt.append(t)
+        self._bv.append(v)
 
     def drop_since(self, t: float) -> None:
         """Remove samples at or after ``t`` from the open bucket (an artifact noted late)."""
