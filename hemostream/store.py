@@ -23,6 +23,8 @@ from sqlalchemy import (BigInteger, Boolean, Float, ForeignKey, Index, Integer, 
 from sqlalchemy.engine import Engine
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
 
+from .core.processor import OBSERVATION_COLUMNS
+
 log = logging.getLogger(__name__)
 
 
@@ -241,6 +243,9 @@ def load_resume(engine: Engine, recent: int = 200_000) -> Resume:
                   beds=beds, messages=known)
 
 
+#: tables whose rows the core hands over as tuples, and their column order
+TUPLE_COLUMNS = {"observations": OBSERVATION_COLUMNS}
+
 _SQL_CACHE: dict[tuple[str, str, tuple[str, ...]], tuple[str, tuple[str, ...]]] = {}
 
 
@@ -268,6 +273,18 @@ def write_rows(engine: Engine, rows: dict[str, list[dict]]) -> None:
         for name in INSERT_ORDER:
             batch = rows.get(name)
             if not batch:
+                continue
+            if isinstance(batch[0], tuple):        # rows given in a fixed column order
+                cols = TUPLE_COLUMNS[name]
+                sql, order = _insert_sql(engine, name, cols)
+                if positional and order == cols:
+                    params = batch
+                else:
+                    params = [dict(zip(cols, r)) for r in batch]
+                    if positional:
+                        get = itemgetter(*order)
+                        params = list(map(get, params))
+                conn.exec_driver_sql(sql, params)
                 continue
             sql, order = _insert_sql(engine, name, tuple(sorted(batch[0])))
             if positional:

@@ -52,7 +52,7 @@ def test_stroke_work_index_typical_adult():
 
 
 def _getter(values):
-    return lambda p: Current(values[p], 0.0) if p in values else None
+    return {p: Current(v, 0.0) for p, v in values.items()}
 
 
 def test_missing_inputs_give_no_value():

@@ -9,7 +9,7 @@ Units follow UCUM: pressures mm[Hg], flows L/min, volumes mL, rates /min, areas 
 from __future__ import annotations
 
 import math
-from typing import Callable, NamedTuple
+from typing import NamedTuple
 
 from .units import MMHG_MIN_PER_L_IN_DYN_S_CM5, MMHG_ML_IN_GF_M
 
@@ -153,121 +153,123 @@ class Derived(NamedTuple):
     inputs: tuple[tuple[str, float], ...]   # (param, measurement time) of every input
 
 
-Getter = Callable[[str], "Current | None"]
-
-
-def derive_all(get: Getter, bsa: tuple[float, float] | None) -> tuple[list[Derived], dict[str, Current]]:
+def derive_all(cur: dict[str, Current], bsa: tuple[float, float] | None
+               ) -> tuple[list[Derived], dict[str, Current]]:
     """Evaluate every derived value from the current inputs.
 
-    ``get(param)`` returns the current valid value of a measured parameter (already checked
-    against its maximum age) or None. ``bsa`` is (m2, admission time) or None.
+    ``cur`` maps each measured parameter to its current valid value (already checked
+    against its maximum age). ``bsa`` is (m2, admission time) or None.
     Returns the derived values and the *effective* values the rules layer reads
     (``MAP``, ``SBP``, ``PAP_MEAN``, ``HR``, ``SV``, ``CO``: measured where measured, else
     calculated), each with its provenance time.
+
+    >>> out, eff = derive_all({"HR": Current(80, 0.0), "CO": Current(5.0, 0.0)}, None)
+    >>> [(d.param, d.value) for d in out]
+    [('SV', 62.5)]
     """
+    get = cur.get
     out: list[Derived] = []
+    add = out.append
     eff: dict[str, Current] = {}
     src: dict[str, tuple[tuple[str, float], ...]] = {}
-
-    def emit(param: str, value: float, inputs: tuple[tuple[str, float], ...]) -> None:
-        if math.isfinite(value):
-            out.append(Derived(param, value, inputs))
-
-    def measured(name: str, p: str) -> bool:
-        c = get(p)
-        if c is None:
-            return False
-        eff[name] = c
-        src[name] = ((p, c.time),)
-        return True
+    isfinite = math.isfinite
 
     # Arterial pressure: the line is preferred over the cuff (continuous, beat to beat);
     # the cuff is used only when no line value is current.
     for sys_p, dia_p, mean_p in (("ABP_SYS", "ABP_DIA", "ABP_MEAN"),
                                  ("NIBP_SYS", "NIBP_DIA", "NIBP_MEAN")):
-        s, d = get(sys_p), get(dia_p)
-        if s is None and d is None and get(mean_p) is None:
+        s, d, m = get(sys_p), get(dia_p), get(mean_p)
+        if s is None and d is None and m is None:
             continue
         if s is not None:
             eff["SBP"], src["SBP"] = s, ((sys_p, s.time),)
+        if m is not None:
+            eff["MAP"], src["MAP"] = m, ((mean_p, m.time),)
         if s is not None and d is not None:
             ins = ((sys_p, s.time), (dia_p, d.time))
-            emit("PP", pulse_pressure(s.value, d.value), ins)
-        if not measured("MAP", mean_p) and s is not None and d is not None:
-            m = mean_pressure(s.value, d.value)
-            emit("MAP", m, ins)
-            eff["MAP"], src["MAP"] = Current(m, max(s.time, d.time)), ins
+            add(Derived("PP", pulse_pressure(s.value, d.value), ins))
+            if m is None:
+                mp = mean_pressure(s.value, d.value)
+                add(Derived("MAP", mp, ins))
+                eff["MAP"], src["MAP"] = Current(mp, max(s.time, d.time)), ins
         break
 
-    # Pulmonary artery mean pressure.
-    if not measured("PAP_MEAN", "PAP_MEAN"):
+    # Pulmonary artery mean pressure: measured, else from systolic and diastolic.
+    pam = get("PAP_MEAN")
+    if pam is not None:
+        eff["PAP_MEAN"], src["PAP_MEAN"] = pam, (("PAP_MEAN", pam.time),)
+    else:
         s, d = get("PAP_SYS"), get("PAP_DIA")
         if s is not None and d is not None:
-            eff["PAP_MEAN"] = Current(mean_pressure(s.value, d.value), max(s.time, d.time))
+            pam = eff["PAP_MEAN"] = Current(mean_pressure(s.value, d.value), max(s.time, d.time))
             src["PAP_MEAN"] = (("PAP_SYS", s.time), ("PAP_DIA", d.time))
 
     # Heart rate: ECG preferred, pulse rate as fallback.
-    if not measured("HR", "HR"):
-        measured("HR", "PR")
+    hr = get("HR")
+    hr_p = "HR"
+    if hr is None:
+        hr, hr_p = get("PR"), "PR"
+    if hr is not None:
+        eff["HR"], src["HR"] = hr, ((hr_p, hr.time),)
 
     # Stroke volume and cardiac output, each from the other and HR when not measured.
-    have_sv = measured("SV", "SV")
-    have_co = measured("CO", "CO")
-    if "HR" in eff and eff["HR"].value > 0:
-        hr, hr_src = eff["HR"], src["HR"]
-        if have_co and not have_sv:
-            ins = src["CO"] + hr_src
-            v = stroke_volume(eff["CO"].value, hr.value)
-            emit("SV", v, ins)
-            eff["SV"], src["SV"] = Current(v, max(t for _, t in ins)), ins
-        elif have_sv and not have_co:
-            ins = hr_src + src["SV"]
-            v = cardiac_output(hr.value, eff["SV"].value)
-            emit("CO", v, ins)
-            eff["CO"], src["CO"] = Current(v, max(t for _, t in ins)), ins
+    sv, co = get("SV"), get("CO")
+    if sv is not None:
+        eff["SV"], src["SV"] = sv, (("SV", sv.time),)
+    if co is not None:
+        eff["CO"], src["CO"] = co, (("CO", co.time),)
+    if hr is not None and hr.value > 0:
+        if co is not None and sv is None:
+            ins = src["CO"] + src["HR"]
+            v = stroke_volume(co.value, hr.value)
+            add(Derived("SV", v, ins))
+            sv = eff["SV"] = Current(v, max(co.time, hr.time))
+            src["SV"] = ins
+        elif sv is not None and co is None:
+            ins = src["HR"] + src["SV"]
+            v = cardiac_output(hr.value, sv.value)
+            add(Derived("CO", v, ins))
+            co = eff["CO"] = Current(v, max(sv.time, hr.time))
+            src["CO"] = ins
 
-    bsa_src: tuple[tuple[str, float], ...] = ()
-    if bsa is not None:
-        bsa_src = (("BSA", bsa[1]),)
-    co = eff.get("CO")
-    sv = eff.get("SV")
+    bsa_src: tuple[tuple[str, float], ...] = (("BSA", bsa[1]),) if bsa is not None else ()
     mp = eff.get("MAP")
     cvp = get("CVP")
     pawp = get("PAWP")
-    pam = eff.get("PAP_MEAN")
 
     ci = svi = None
     if bsa is not None and bsa[0] > 0:
         if co is not None:
             ci = indexed(co.value, bsa[0])
-            emit("CI", ci, src["CO"] + bsa_src)
+            add(Derived("CI", ci, src["CO"] + bsa_src))
         if sv is not None:
             svi = indexed(sv.value, bsa[0])
-            emit("SVI", svi, src["SV"] + bsa_src)
+            add(Derived("SVI", svi, src["SV"] + bsa_src))
 
     if co is not None and co.value > 0:
         if mp is not None and cvp is not None:
-            emit("SVR", resistance(mp.value, cvp.value, co.value),
-                 src["MAP"] + (("CVP", cvp.time),) + src["CO"])
+            add(Derived("SVR", resistance(mp.value, cvp.value, co.value),
+                        src["MAP"] + (("CVP", cvp.time),) + src["CO"]))
         if pam is not None and pawp is not None:
-            emit("PVR", resistance(pam.value, pawp.value, co.value),
-                 src["PAP_MEAN"] + (("PAWP", pawp.time),) + src["CO"])
+            add(Derived("PVR", resistance(pam.value, pawp.value, co.value),
+                        src["PAP_MEAN"] + (("PAWP", pawp.time),) + src["CO"]))
     if ci is not None and ci > 0 and mp is not None and cvp is not None:
-        emit("SVRI", resistance(mp.value, cvp.value, ci),
-             src["MAP"] + (("CVP", cvp.time),) + src["CO"] + bsa_src)
+        add(Derived("SVRI", resistance(mp.value, cvp.value, ci),
+                    src["MAP"] + (("CVP", cvp.time),) + src["CO"] + bsa_src))
     if svi is not None:
         if mp is not None and pawp is not None:
-            emit("LVSWI", stroke_work_index(svi, mp.value, pawp.value),
-                 src["SV"] + bsa_src + src["MAP"] + (("PAWP", pawp.time),))
+            add(Derived("LVSWI", stroke_work_index(svi, mp.value, pawp.value),
+                        src["SV"] + bsa_src + src["MAP"] + (("PAWP", pawp.time),)))
         if pam is not None and cvp is not None:
-            emit("RVSWI", stroke_work_index(svi, pam.value, cvp.value),
-                 src["SV"] + bsa_src + src["PAP_MEAN"] + (("CVP", cvp.time),))
+            add(Derived("RVSWI", stroke_work_index(svi, pam.value, cvp.value),
+                        src["SV"] + bsa_src + src["PAP_MEAN"] + (("CVP", cvp.time),)))
 
-    hr = eff.get("HR")
     if hr is not None:
         sbp = eff.get("SBP")
         if sbp is not None and sbp.value > 0:
-            emit("SI", shock_index(hr.value, sbp.value), src["HR"] + src["SBP"])
+            add(Derived("SI", shock_index(hr.value, sbp.value), src["HR"] + src["SBP"]))
         if mp is not None and mp.value > 0:
-            emit("MSI", modified_shock_index(hr.value, mp.value), src["HR"] + src["MAP"])
+            add(Derived("MSI", modified_shock_index(hr.value, mp.value), src["HR"] + src["MAP"]))
+    if not all(isfinite(d.value) for d in out):
+        out = [d for d in out if isfinite(d.value)]
     return out, eff

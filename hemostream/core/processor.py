@@ -80,13 +80,19 @@ def _short(v: Any) -> str:
     return r if len(r) <= 60 else r[:57] + "..."
 
 
+#: column order of the observation row tuples
+OBSERVATION_COLUMNS = ("message_id", "bed_id", "param", "time", "value", "unit", "raw_value",
+                       "raw_unit", "status", "late")
+
+
 @dataclass
 class Outputs:
     """What the core produced since the last drain: rows per table and messages to publish."""
 
     beds: list[dict] = field(default_factory=list)
     messages: list[dict] = field(default_factory=list)
-    observations: list[dict] = field(default_factory=list)
+    #: the hot table: tuples in the order of :data:`OBSERVATION_COLUMNS`
+    observations: list[tuple] = field(default_factory=list)
     derived: list[dict] = field(default_factory=list)
     admissions: list[dict] = field(default_factory=list)
     notes: list[dict] = field(default_factory=list)
@@ -196,12 +202,14 @@ class Processor:
         self._max_age = dict(self.cfg.derive.max_age_s)
         self._bsa_fn = bsa_dubois if self.cfg.derive.bsa_formula == "dubois" else bsa_mosteller
         self._units = {u.id: set(u.beds) for u in self.cfg.units}
-        # (param, unit) -> (factor, offset, canonical unit) for every valid pairing
-        self._conv: dict[tuple[str, str], tuple[float, float, str]] = {}
+        # (param, unit) -> (factor, offset, canonical unit, plausible low, high), precomputed
+        # for every valid pairing so the per-observation work is one dictionary look-up
+        self._conv: dict[tuple[str, str], tuple[float, float, str, float, float]] = {}
         for p, spec in PARAMS.items():
+            lo, hi = self._plausible[p]
             for code in BY_DIMENSION[spec.dimension]:
                 u = UNITS[code]
-                self._conv[(p, code)] = (u.factor, u.offset, CANONICAL[spec.dimension])
+                self._conv[(p, code)] = (u.factor, u.offset, CANONICAL[spec.dimension], lo, hi)
         self._param_list = ", ".join(PARAMS)
 
     # ------------------------------------------------------------------ public API
@@ -315,10 +323,11 @@ class Processor:
         skew = self.cfg.ingest.max_clock_skew_s
         rows = self.out.observations
         conv = self._conv
-        plausible = self._plausible
         new: set[str] = set()
         nonvalid: dict[str, str] = {}
         latest = bed.latest
+        bed_id = bed.id
+        n = 0
         for i, o in enumerate(msg.obs):
             p = o.param
             c = conv.get((p, o.unit))
@@ -334,9 +343,9 @@ class Processor:
                     cat = "bad_unit"
                 self._reject(cat, reason, topic, payload, rx, i, msg.device, msg.seq)
                 continue
-            factor, offset, cunit = c
-            value = o.value * factor + offset
-            lo, hi = plausible[p]
+            factor, offset, cunit, lo, hi = c
+            raw = o.value
+            value = raw * factor + offset
             if not lo <= value <= hi:
                 self._reject("implausible", f"obs[{i}].value: {p} {value:g} {cunit} is outside "
                              f"the plausible range {lo:g} to {hi:g} {cunit}",
@@ -348,19 +357,19 @@ class Processor:
                              f"{ot - rx:.0f} s ahead of arrival {iso(rx)} (limit {skew:g} s)",
                              topic, payload, rx, i, msg.device, msg.seq)
                 continue
-            rows.append({"message_id": mid, "bed_id": bed.id, "param": p, "time": ot,
-                         "value": value, "unit": cunit, "raw_value": o.value,
-                         "raw_unit": o.unit, "status": o.status, "late": late})
-            self.counters.observations += 1
+            status = o.status
+            rows.append((mid, bed_id, p, ot, value, cunit, raw, o.unit, status, late))
+            n += 1
             if late:
                 continue
-            if o.status != "valid":
-                nonvalid[p] = o.status
+            if status != "valid":
+                nonvalid[p] = status
                 continue
             cur = latest.get(p)
             if cur is None or ot >= cur.time:
                 latest[p] = Current(value, ot)
                 new.add(p)
+        self.counters.observations += n
         if late:
             return
         if t > bed.newest:
@@ -369,24 +378,13 @@ class Processor:
 
     def _derive(self, bed: _Bed, new: set[str], nonvalid: dict[str, str], device: str) -> None:
         now = bed.newest
-        latest = bed.latest
         max_age = self._max_age
-
-        def get(p: str) -> Current | None:
-            c = latest.get(p)
-            if c is None or now - c.time > max_age[p]:
-                return None
-            return c
-
-        derived, eff = derive_all(get, bed.bsa)
+        cur = {p: c for p, c in bed.latest.items() if now - c.time <= max_age[p]}
+        derived, eff = derive_all(cur, bed.bsa)
         self.counters.derived_computed += len(derived)
         st = self.cfg.store
         stored = bed.stored
-        fresh: dict[str, float] = {}
-        for p in latest:
-            c = get(p)
-            if c is not None:
-                fresh[p] = c.value
+        fresh: dict[str, float] = {p: c.value for p, c in cur.items()}
         for name, c in eff.items():
             fresh[name] = c.value
         publish_vals = {}
@@ -408,8 +406,7 @@ class Processor:
         if self.publish:
             body: dict[str, Any] = {
                 "v": 1, "time": iso(now), "values": publish_vals,
-                "measured": {p: [c.value, iso(c.time)] for p, c in latest.items()
-                             if now - c.time <= max_age[p]}}
+                "measured": {p: [c.value, iso(c.time)] for p, c in cur.items()}}
             if nonvalid:
                 body["status"] = nonvalid
             if self.rules is not None:
