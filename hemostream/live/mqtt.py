@@ -33,6 +33,7 @@ from typing import AsyncIterator, Callable
 from urllib.parse import urlsplit
 
 import aiomqtt
+from aiomqtt.exceptions import MqttConnectError
 import paho.mqtt.client as paho
 from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
@@ -184,7 +185,7 @@ class MqttTransport:
         client = self._make_client()
         try:
             await client.__aenter__()
-        except aiomqtt.MqttConnectError as e:
+        except MqttConnectError as e:
             rc = getattr(e, "rc", None)
             value = getattr(rc, "value", rc)
             if value in REFUSED:

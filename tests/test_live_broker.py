@@ -1,0 +1,145 @@
+"""The live service against a real Mosquitto: end to end, outputs, bad input, commands.
+
+Expected behaviour is that of MQTT 5.0 (OASIS Standard, 2019): QoS 1 delivers at least once
+(section 4.3.2), retained messages go to new subscribers (section 3.3.1.3), the last will is
+published when a connection ends without DISCONNECT (section 3.1.2.5).
+"""
+
+from __future__ import annotations
+
+import json
+import time
+
+import pytest
+
+from live_fixtures import (UNIT, ServiceThread, Subscriber, broker, live_config,  # noqa: F401
+                           mqtt_transport, obs_lines, publish, query, repeated_identities,
+                           stored_messages, wait_until)
+
+pytestmark = pytest.mark.broker
+
+
+def test_end_to_end_every_message_stored_once_and_outputs_published(broker, tmp_path):
+    db = f"sqlite:///{tmp_path / 'e2e.db'}"
+    cfg = live_config(broker.url(), db, "hs-e2e")
+    sub = Subscriber(broker.ports["anon"], [f"hemo/{UNIT}/+/derived", "hemo/_svc/hs-e2e/status"])
+    svc = ServiceThread(cfg, mqtt_transport(cfg)).start()
+    try:
+        lines = obs_lines(600, beds=3)
+        # the at-least-once publisher may resend; send a third of the stream twice on purpose
+        summary = publish(lines + lines[:200], broker.url(), None)
+        assert summary.published == 800
+        wait_until(lambda: stored_messages(db) >= 600, 30, "600 stored messages")
+        wait_until(lambda: svc.svc.health.stored >= 800, 30, "every delivery committed")
+        time.sleep(0.3)
+        assert stored_messages(db) == 600
+        assert repeated_identities(db) == []
+        assert query(db, "SELECT count(*) FROM observations")[0][0] == 600 * 6
+        assert svc.svc.health.duplicates == 200
+        wait_until(lambda: sub.payloads("/derived"), 10, "derived values published")
+        d = sub.payloads("/derived")[-1]
+        assert d["v"] == 1 and "values" in d
+        wait_until(lambda: any(p.get("kind") == "health" for p in sub.payloads("/status")),
+                   10, "a health message")
+        health = [p for p in sub.payloads("/status") if p.get("kind") == "health"][-1]
+        for key in ("messages_per_s", "lag_s", "rejected_total", "queue", "db_write_ms",
+                    "shed_total"):
+            assert key in health
+        assert health["shed_total"] == 0
+    finally:
+        code = svc.stop()
+        sub.close()
+    assert code == 0
+    # the retained status says offline after a clean stop
+    late = Subscriber(broker.ports["anon"], ["hemo/_svc/hs-e2e/status"])
+    try:
+        wait_until(lambda: late.payloads("/status"), 10, "the retained status")
+        st = late.payloads("/status")[-1]
+        assert st["kind"] == "status" and st["state"] == "offline" and st["reason"] == "stopped"
+    finally:
+        late.close()
+
+
+def test_map_published_matches_the_textbook_estimate(broker, tmp_path):
+    """MAP estimate DBP + (SBP - DBP) / 3 (common practice, see shared references) for a bed
+    with only systolic and diastolic invasive pressure."""
+    db = f"sqlite:///{tmp_path / 'map.db'}"
+    cfg = live_config(broker.url(), db, "hs-map", beds=1)
+    sub = Subscriber(broker.ports["anon"], [f"hemo/{UNIT}/bed-01/derived"])
+    svc = ServiceThread(cfg, mqtt_transport(cfg)).start()
+    try:
+        t = time.time()
+        msg = {"v": 1, "device": "gw-map", "seq": 1, "time": _iso(t), "obs": [
+            {"param": "ABP_SYS", "value": 120, "unit": "mm[Hg]"},
+            {"param": "ABP_DIA", "value": 60, "unit": "mm[Hg]"}]}
+        publish([{"rx": _iso(t), "topic": f"hemo/{UNIT}/bed-01/obs", "payload": msg}],
+                broker.url(), None)
+        wait_until(lambda: any("MAP" in p.get("values", {}) for p in sub.payloads("/derived")),
+                   10, "a published MAP")
+        m = [p for p in sub.payloads("/derived") if "MAP" in p.get("values", {})][-1]
+        assert m["values"]["MAP"] == pytest.approx(60 + (120 - 60) / 3)
+    finally:
+        svc.stop()
+        sub.close()
+
+
+def test_malformed_and_oversized_messages_are_stored_as_rejects_and_service_goes_on(
+        broker, tmp_path):
+    db = f"sqlite:///{tmp_path / 'bad.db'}"
+    cfg = live_config(broker.url(), db, "hs-bad")
+    svc = ServiceThread(cfg, mqtt_transport(cfg)).start()
+    try:
+        t = time.time()
+        big = json.dumps({"v": 1, "pad": "x" * (300 * 1024)})      # over 256 KiB
+        bad = [
+            {"rx": _iso(t), "topic": f"hemo/{UNIT}/bed-01/obs", "payload": "{not json"},
+            {"rx": _iso(t), "topic": f"hemo/{UNIT}/bed-01/obs", "payload": big},
+            {"rx": _iso(t), "topic": f"hemo/{UNIT}/bed-02/obs",
+             "payload": {"v": 2, "device": "gw", "seq": 1, "time": _iso(t),
+                         "obs": [{"param": "HR", "value": 80, "unit": "/min"}]}},
+            {"rx": _iso(t), "topic": f"hemo/{UNIT}/bed-09/obs",      # bed not configured
+             "payload": obs_lines(1)[0]["payload"]},
+            {"rx": _iso(t), "topic": f"hemo/{UNIT}/bed-01/note",
+             "payload": {"v": 1, "time": _iso(t), "kind": "fluid_bolus"}},  # no volume
+        ]
+        publish(bad, broker.url(), None)
+        good = obs_lines(30, beds=3)
+        publish(good, broker.url(), None)
+        wait_until(lambda: stored_messages(db) >= 30, 20, "the good messages after the bad")
+        wait_until(lambda: len(query(db, "SELECT id FROM rejected")) >= 5, 20, "5 rejects")
+        cats = sorted(r[0] for r in query(db, "SELECT category FROM rejected"))
+        assert cats == sorted(["invalid_json", "too_large", "bad_version",
+                               "bed_not_configured", "bad_field"]), cats
+        size, raw_len = query(db, "SELECT size, length(raw) FROM rejected "
+                                  "WHERE category='too_large'")[0]
+        assert size == len(big.encode()) and raw_len == 64 * 1024   # first 64 KiB kept
+        assert svc.svc.fatal is None
+    finally:
+        assert svc.stop() == 0
+
+
+def test_ack_command_is_stored_for_audit(broker, tmp_path):
+    from live_fixtures import run_cli_process
+    db = f"sqlite:///{tmp_path / 'cmd.db'}"
+    cfg = live_config(broker.url(), db, "hs-cmd")
+    svc = ServiceThread(cfg, mqtt_transport(cfg)).start()
+    try:
+        p = run_cli_process(["ack", "--bed", f"{UNIT}/bed-02", "--alarm", "MAP_LOW",
+                             "--by", "nurse-k", "--broker", broker.url()])
+        assert p.wait(30) == 0
+        p = run_cli_process(["ack", "--bed", f"{UNIT}/bed-02", "--alarm", "MAP_LOW",
+                             "--by", "nurse-k", "--pause-audio", "--broker", broker.url()])
+        assert p.wait(30) == 0
+        wait_until(lambda: len(query(db, "SELECT id FROM commands")) == 2, 20,
+                   "two stored commands")
+        rows = query(db, "SELECT action, alarm, by, result FROM commands ORDER BY id")
+        assert [r[:3] for r in rows] == [("acknowledge", "MAP_LOW", "nurse-k"),
+                                         ("pause_audio", "MAP_LOW", "nurse-k")]
+        assert all(r[3] for r in rows)          # what became of it is recorded too
+    finally:
+        svc.stop()
+
+
+def _iso(t: float) -> str:
+    from hemostream.core.processor import iso
+    return iso(t)
