@@ -1,0 +1,130 @@
+"""The shipped broker configurations (configs/mosquitto/) start a real Mosquitto and do what
+their comments say. Paths and ports are moved to a temporary directory; nothing else changes.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import getpass
+import re
+import subprocess
+import time
+from pathlib import Path
+
+import pytest
+
+from hemostream.core.config import BrokerConfig
+from hemostream.live.mqtt import MqttTransport
+from hemostream.live.transport import TransportError
+
+from live_fixtures import ROOT, wait_until
+from mosquitto import MOSQUITTO, MOSQUITTO_PASSWD, free_ports, make_certificates, require_broker
+
+pytestmark = pytest.mark.broker
+SHIPPED = ROOT / "configs" / "mosquitto"
+
+
+def _start(conf: Path, port: int, cwd: Path) -> subprocess.Popen:
+    p = subprocess.Popen([MOSQUITTO, "-c", str(conf)], cwd=cwd, stdout=subprocess.DEVNULL,
+                         stderr=subprocess.PIPE)
+    import socket
+
+    def up() -> bool:
+        if p.poll() is not None:
+            raise AssertionError(f"mosquitto refused {conf.name}: {p.stderr.read().decode()}")
+        try:
+            socket.create_connection(("127.0.0.1", port), 0.3).close()
+            return True
+        except OSError:
+            return False
+    wait_until(up, 15, f"mosquitto with {conf.name}")
+    return p
+
+
+def _stop(p: subprocess.Popen) -> None:
+    p.terminate()
+    p.wait(15)
+    if p.stderr:
+        p.stderr.close()
+
+
+def _try(cfg: BrokerConfig) -> None:
+    async def go():
+        t = MqttTransport(cfg, persistent=False)
+        await t.connect()
+        await t.disconnect()
+    asyncio.run(go())
+
+
+def test_dev_config(tmp_path):
+    require_broker()
+    port, = free_ports(1)
+    text = (SHIPPED / "dev.conf").read_text()
+    text = text.replace("listener 1883 127.0.0.1", f"listener {port} 127.0.0.1")
+    conf = tmp_path / "dev.conf"
+    conf.write_text(f"user {getpass.getuser()}\n" + text)
+    p = _start(conf, port, tmp_path)
+    try:
+        _try(BrokerConfig(url=f"mqtt://127.0.0.1:{port}", client_id="dev-check"))
+    finally:
+        _stop(p)
+    assert (tmp_path / "mosquitto.db").exists()          # persistence where it was started
+
+
+def test_secure_config_with_the_shipped_acl(tmp_path, monkeypatch):
+    require_broker()
+    port, = free_ports(1)
+    certs = tmp_path / "certs"
+    certs.mkdir()
+    make_certificates(certs)
+    pw = tmp_path / "passwd"
+    pw.write_text("")
+    users = {"hemostream": "s-1", "gw-sdu4-bed-01": "g-1"}
+    for u, w in users.items():
+        subprocess.run([MOSQUITTO_PASSWD, "-b", str(pw), u, w], check=True)
+    (tmp_path / "data").mkdir()
+    text = (SHIPPED / "secure.conf").read_text()
+    text = (text.replace("/etc/mosquitto/certs/", f"{certs}/")
+                .replace("/etc/mosquitto/passwd", str(pw))
+                .replace("/etc/mosquitto/hemostream.acl", str(SHIPPED / "hemostream.acl"))
+                .replace("/var/lib/mosquitto/", f"{tmp_path}/data/"))
+    text = re.sub(r"^listener 8883$", f"listener {port} 127.0.0.1", text, flags=re.M)
+    assert "/etc/" not in re.sub(r"#.*", "", text)
+    conf = tmp_path / "secure.conf"
+    conf.write_text(f"user {getpass.getuser()}\n" + text)
+    p = _start(conf, port, tmp_path)
+    url = f"mqtts://127.0.0.1:{port}"
+    ca = str(certs / "ca.crt")
+    try:
+        with pytest.raises(TransportError) as e:                 # anonymous: no
+            _try(BrokerConfig(url=url, client_id="a", ca_file=ca))
+        assert e.value.refused
+        monkeypatch.setenv("T_S", users["hemostream"])
+        monkeypatch.setenv("T_G", users["gw-sdu4-bed-01"])
+        _try(BrokerConfig(url=url, client_id="s", username="hemostream", password_env="T_S",
+                          ca_file=ca))
+
+        async def acl() -> list[str]:
+            svc = MqttTransport(BrokerConfig(url=url, client_id="svc", username="hemostream",
+                                             password_env="T_S", ca_file=ca),
+                                persistent=False)
+            gw = MqttTransport(BrokerConfig(url=url, client_id="gw", username="gw-sdu4-bed-01",
+                                            password_env="T_G", ca_file=ca), persistent=False)
+            await svc.connect()
+            await svc.subscribe(["hemo/SDU4/+/obs"], 0)
+            await gw.connect()
+            await gw.publish_wait("hemo/SDU4/bed-02/obs", b"forged", 1)
+            await gw.publish_wait("hemo/SDU4/bed-01/obs", b"own", 1)
+            got = []
+            end = time.monotonic() + 3
+            async for m in svc.messages():
+                got.append(m.topic)
+                if m.payload == b"own" or time.monotonic() > end:
+                    break
+            await gw.disconnect()
+            await svc.disconnect()
+            return got
+
+        assert asyncio.run(acl()) == ["hemo/SDU4/bed-01/obs"]
+    finally:
+        _stop(p)
