@@ -104,7 +104,8 @@ def test_bucketed_slope_recovers_a_linear_rise_with_noise():
 
 def test_bucket_points_match_scipy_on_the_same_points():
     # The estimate is Theil-Sen of the bucket points: recompute the points independently
-    # (median per 15 s bucket at the mean sample time) and compare with scipy.
+    # (interquartile mean per 15 s bucket with scipy.stats.trim_mean(values, 0.25), which
+    # cuts int(0.25 n) values at each end, at the mean sample time) and compare with scipy.
     rng = random.Random(11)
     tr = RobustTrend(window_s=600, bucket_s=15, min_points=12)
     samples = [(T0 + k, 80 - 3 * k / 600 + rng.gauss(0, 2)) for k in range(700)]
@@ -114,8 +115,8 @@ def test_bucket_points_match_scipy_on_the_same_points():
     for t, v in samples:
         buckets.setdefault(math.floor(t / 15), []).append((t, v))
     keys = sorted(buckets)[:-1]                      # the last bucket is still open
-    pts = [(np.mean([t for t, _ in buckets[k]]), np.median([v for _, v in buckets[k]]))
-           for k in keys]
+    pts = [(np.mean([t for t, _ in buckets[k]]),
+            scipy_stats.trim_mean([v for _, v in buckets[k]], 0.25)) for k in keys]
     newest = pts[-1][0]
     pts = [p for p in pts if p[0] >= newest - 600]
     ref = scipy_stats.theilslopes([v for _, v in pts], [t for t, _ in pts])
@@ -162,6 +163,19 @@ def test_memory_is_bounded_by_the_window():
     _feed(tr, T0, 6 * 3600, lambda s: 5 + math.sin(s / 500), step=1.0)
     assert len(tr._t) <= 600 / 15 + 1
     assert len(tr._bv) <= 15
+
+
+def test_bucket_value_is_robust_and_resolves_below_the_display_resolution():
+    from hemostream.core.trends import bucket_value
+    rng = random.Random(12)
+    # whole-number readings of a true 6.4 with noise: the median snaps to 6, the
+    # interquartile mean stays near 6.4 (checked against scipy.stats.trim_mean)
+    vals = [round(6.4 + rng.gauss(0, 0.7)) for _ in range(15)]
+    assert bucket_value(vals) == pytest.approx(scipy_stats.trim_mean(vals, 0.25))
+    many = [round(6.4 + rng.gauss(0, 0.7)) for _ in range(4000)]
+    assert abs(bucket_value(many) - 6.4) < 0.1 and float(np.median(many)) == 6.0
+    # two spikes in fifteen values do not move it much
+    assert abs(bucket_value([6.0] * 13 + [300.0, 300.0]) - 6.0) < 1e-9
 
 
 def test_late_sample_is_ignored_and_noted_artifact_dropped_from_open_bucket():

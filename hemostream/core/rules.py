@@ -253,11 +253,17 @@ class RulesEngine:
         # parameter -> indices of the patterns that read its trend / its level
         self._by_trend: dict[str, list[int]] = {}
         by_level: dict[str, list[int]] = {}
+        trended = set(cfg.trends.params)
         for k, pat in enumerate(self._patterns):
             for p in pat.trend_inputs:
                 self._by_trend.setdefault(p, []).append(k)
             for p in pat.level_inputs:
-                by_level.setdefault(p, []).append(k)
+                # a trended level is read from its bucket points: new once per bucket
+                if p in trended:
+                    if k not in self._by_trend.setdefault(p, []):
+                        self._by_trend[p].append(k)
+                else:
+                    by_level.setdefault(p, []).append(k)
         self._by_level = tuple(by_level.items())
         te = cfg.technical
         self._feed_after = dict(te.feed_silent_after_s)
@@ -393,7 +399,7 @@ class RulesEngine:
                 if tr is None:
                     tr = trends[p] = RobustTrend(tc.window_s, tc.bucket_s, tc.min_points,
                                                  tc.min_span_fraction, tc.gap_reset_s,
-                                                 tc.stale_after_s)
+                                                 tc.stale_after_s, tc.params[p].step_reset)
                 if tr.update(t, fresh[p]):
                     changed.append(p)
 
@@ -461,6 +467,12 @@ class RulesEngine:
         if not self.cfg.enabled:
             return []
         ev: list[RuleEvent] = []
+        if kind in self.cfg.artifacts.trend_reset_note_kinds:
+            b = self._bed(bed)
+            for p in self.art.affected(self.art.channels_for(param)):
+                tr = b.trends.get(p)
+                if tr is not None:
+                    tr.reset()
         if kind in self.cfg.artifacts.note_kinds:
             b = self._bed(bed)
             chs = self.art.note(b.art, t, param, duration_s)
@@ -609,9 +621,9 @@ class RulesEngine:
                     continue
             v = None
             if term.level:
-                if p in excluded:
-                    continue
-                v = fresh.get(p)
+                # the level of a pattern is the latest bucket value where the parameter is
+                # trended (robust to single noisy samples), else the current value
+                v = self._robust_level(b, p, t, fresh, excluded)
                 if v is None:
                     continue
             info: dict[str, Any] = {"param": p}
@@ -867,8 +879,8 @@ class RulesEngine:
 
     # ================================================================== profile
 
-    def _level(self, b: _Bed, p: str, t: float, fresh: dict[str, float],
-               excluded: frozenset[str]) -> float | None:
+    def _robust_level(self, b: _Bed, p: str, t: float, fresh: dict[str, float],
+                      excluded: frozenset[str]) -> float | None:
         tr = b.trends.get(p)
         if tr is not None:
             lp = tr.last_point()
@@ -915,7 +927,8 @@ class RulesEngine:
 
     def _eval_profile(self, b: _Bed, t: float, fresh: dict[str, float],
                       excluded: frozenset[str], ev: list[RuleEvent]) -> None:
-        levels = {p: self._level(b, p, t, fresh, excluded) for p in self._profile_inputs}
+        levels = {p: self._robust_level(b, p, t, fresh, excluded)
+                  for p in self._profile_inputs}
         cls = self.classify(levels)
         if cls == b.profile:
             b.cand = None

@@ -59,6 +59,8 @@ class TrendParam(BaseModel):
     model_config = _STRICT
     steady_abs: Annotated[float, Field(ge=0)]
     steady_rel: Annotated[float, Field(ge=0, le=1)] = 0.0
+    #: a jump between consecutive bucket points larger than this restarts the trend
+    step_reset: Annotated[float, Field(gt=0)] | None = None
 
 
 def _default_trend_params() -> dict[str, TrendParam]:
@@ -69,15 +71,15 @@ def _default_trend_params() -> dict[str, TrendParam]:
         "HR": a(steady_abs=5.0),            # /min
         "MAP": a(steady_abs=5.0),           # mm[Hg]
         "SBP": a(steady_abs=8.0),           # mm[Hg]
-        "CVP": a(steady_abs=1.5),           # mm[Hg]
-        "PAP_MEAN": a(steady_abs=3.0),      # mm[Hg]
+        "CVP": a(steady_abs=0.8, step_reset=3.0),        # mm[Hg]
+        "PAP_MEAN": a(steady_abs=3.0, step_reset=6.0),   # mm[Hg]
         "PAWP": a(steady_abs=2.0),          # mm[Hg]
-        "CO": a(steady_abs=0.2, steady_rel=0.05),    # L/min, or 5 % of the level
-        "CI": a(steady_abs=0.1, steady_rel=0.05),    # L/min/m2
+        "CO": a(steady_abs=0.15, steady_rel=0.04),   # L/min, or 4 % of the level
+        "CI": a(steady_abs=0.08, steady_rel=0.04),   # L/min/m2
         "SV": a(steady_abs=3.0, steady_rel=0.05),    # mL
         "SVI": a(steady_abs=2.0, steady_rel=0.05),   # mL/m2
         "SVR": a(steady_abs=60.0, steady_rel=0.06),  # dyn.s/cm5
-        "SI": a(steady_abs=0.05),           # 1
+        "SI": a(steady_abs=0.08),           # 1
         "SPO2": a(steady_abs=1.5),          # %
         "RR": a(steady_abs=3.0),            # /min
         "TEMP": a(steady_abs=0.3),          # Cel
@@ -161,6 +163,11 @@ class ArtifactConfig(BaseModel):
         default_factory=lambda: ["line_flush", "zeroing", "sample_draw"])
     #: span length when the note gives no ``duration_s``
     note_span_s: Seconds = 60.0
+    #: note kinds after which the trends of the note's channel restart (the reading's
+    #: reference changed: a transducer levelled again)
+    trend_reset_note_kinds: list[Literal["line_flush", "zeroing", "sample_draw",
+                                         "reposition"]] = Field(
+        default_factory=lambda: ["reposition"])
     #: channels a note without ``param`` concerns (the invasive, transducer-based ones)
     note_all_channels: list[str] = Field(
         default_factory=lambda: ["ABP", "CVP", "PAP", "PAWP"])
@@ -330,7 +337,7 @@ def _default_patterns() -> dict[str, PatternRule]:
                    "1955;35:123 (published, qualitative); thresholds: project choice",
             message="possible right-heart / pump mismatch",
             terms=[T(param="CVP", trend="rising"), T(param=["CI", "CO"], trend="falling")],
-            priority="medium", delay_s=60, clear_delay_s=60),
+            priority="medium", delay_s=15, clear_delay_s=60),
         "shock_index_high": P(
             description="Shock index (HR / systolic pressure) at or above the warning level "
                         "0.9 (low priority), at or above 1.0 (medium priority), sustained.",

@@ -3,9 +3,14 @@
 Method
 ------
 Samples of one parameter are reduced to one point per fixed time bucket (``bucket_s``,
-aligned to multiples of it in epoch time): the point is the median of the bucket's values at
-the mean of their times. The trend is the **Theil-Sen slope** of the bucket points inside the
-window: the median of the slopes of all pairs of points.
+aligned to multiples of it in epoch time): the point is the **interquartile mean** of the
+bucket's values (the mean of the middle half after sorting; the median for fewer than four
+values) at the mean of their times. Like the median it ignores a spike or two; unlike the
+median it resolves changes smaller than the device's display resolution, because noise
+dithers whole-number readings (a CVP sent as 6, 7, 6, 6, 7 ... averages 6.4, its median is 6)
+(trimmed means: common practice in robust statistics, e.g. Tukey's trimean family; from
+memory). The trend is the **Theil-Sen slope** of the bucket points inside the window: the
+median of the slopes of all pairs of points.
 
 - Theil H, "A rank-invariant method of linear and polynomial regression analysis",
   Proc. Koninklijke Nederlandse Akademie van Wetenschappen 1950;53:386-392, 521-525,
@@ -21,14 +26,16 @@ use as a consistency check on the direction is the project's). A direction needs
 beyond the steady band *and* tau beyond ``min_tau``, so a slope carried by a few points does
 not count.
 
-Cost: adding a sample is O(1) (append to the open bucket). When a bucket closes, its median
+Cost: adding a sample is O(1) (append to the open bucket). When a bucket closes, its value
 is taken (O(k log k) for k samples in the bucket) and the slope is recomputed over the n
 window points with numpy: O(n^2) pairs, n = window_s / bucket_s (40 points and 780 pairs for
 10 minutes at 15 s; 120 points for 30 minutes), i.e. once per bucket, not once per sample.
 Memory per estimator: two float arrays of n points plus the open bucket.
 
-Gaps: a gap between points longer than ``gap_reset_s`` drops the points before it, and an
-estimate needs ``min_points`` points spanning ``min_span_fraction`` of the window; a trend
+Gaps and steps: a gap between points longer than ``gap_reset_s`` drops the points before
+it, and so does a jump between consecutive points larger than ``step_reset`` (when set: a
+step is not a trend; a transducer moved to another height shifts the reading at once, a
+physiological change takes minutes). An estimate needs ``min_points`` points spanning ``min_span_fraction`` of the window; a trend
 whose newest point is older than ``stale_after_s`` reads as unknown (None).
 """
 
@@ -48,6 +55,24 @@ def _pairs(n: int) -> tuple[np.ndarray, np.ndarray]:
         i, j = np.triu_indices(n, k=1)
         p = _PAIRS[n] = (i.astype(np.intp), j.astype(np.intp))
     return p
+
+
+def bucket_value(vals: list[float]) -> float:
+    """Interquartile mean: the mean of the middle half of the sorted values (for n >= 4;
+    drops ``n // 4`` values at each end), the median below four values.
+
+    >>> bucket_value([6, 7, 6, 6, 7, 6, 300, 6])     # the spike is dropped
+    6.25
+    >>> bucket_value([5.0, 9.0])
+    7.0
+    """
+    s = sorted(vals)
+    n = len(s)
+    if n >= 4:
+        k = n // 4
+        mid = s[k:n - k]
+        return sum(mid) / len(mid)
+    return s[n // 2] if n % 2 else 0.5 * (s[n // 2 - 1] + s[n // 2])
 
 
 def theil_sen(x, y) -> tuple[float, float, float]:
@@ -110,7 +135,7 @@ class TrendReading:
 
 
 class RobustTrend:
-    """Theil-Sen trend of one parameter over bucket medians (see the module docstring).
+    """Theil-Sen trend of one parameter over bucket points (see the module docstring).
 
     >>> tr = RobustTrend(window_s=600, bucket_s=15, min_points=12)
     >>> for k in range(600):           # 10 minutes at 1 Hz, rising 0.01 per second
@@ -121,20 +146,21 @@ class RobustTrend:
     """
 
     __slots__ = ("window_s", "bucket_s", "min_points", "min_span_s", "gap_reset_s",
-                 "stale_after_s", "_t", "_v", "_bucket", "_bt", "_bv", "_reading", "_dirty",
+                 "stale_after_s", "step_reset", "_t", "_v", "_bucket", "_bt", "_bv", "_reading", "_dirty",
                  "open_start", "open_end")
 
     def __init__(self, window_s: float, bucket_s: float, min_points: int,
                  min_span_fraction: float = 0.5, gap_reset_s: float = 180.0,
-                 stale_after_s: float = 60.0) -> None:
+                 stale_after_s: float = 60.0, step_reset: float | None = None) -> None:
         self.window_s = window_s
         self.bucket_s = bucket_s
         self.min_points = min_points
         self.min_span_s = min_span_fraction * window_s
         self.gap_reset_s = gap_reset_s
         self.stale_after_s = stale_after_s
+        self.step_reset = step_reset
         self._t = array("d")          # bucket point times, increasing
-        self._v = array("d")          # bucket medians
+        self._v = array("d")          # bucket values (interquartile means)
         self._bucket: int | None = None
         self._bt: list[float] = []    # open bucket: sample times ...
         self._bv: list[float] = []    # ... and values
@@ -177,6 +203,15 @@ class RobustTrend:
         self._bt.append(t)
         self._bv.append(v)
 
+    def reset(self) -> None:
+        """Forget the points (the trend restarts); the open bucket is dropped too."""
+        del self._t[:]
+        del self._v[:]
+        self._bt = []
+        self._bv = []
+        self._reading = None
+        self._dirty = False
+
     def drop_since(self, t: float) -> None:
         """Remove samples at or after ``t`` from the open bucket (an artifact noted late)."""
         if self._bt and self._bt[-1] >= t:
@@ -189,11 +224,11 @@ class RobustTrend:
         if not vals:
             return False
         n = len(vals)
-        s = sorted(vals)
-        med = s[n // 2] if n % 2 else 0.5 * (s[n // 2 - 1] + s[n // 2])
+        med = bucket_value(vals)
         pt = sum(self._bt) / n
         tt, vv = self._t, self._v
-        if tt and pt - tt[-1] > self.gap_reset_s:
+        if tt and (pt - tt[-1] > self.gap_reset_s or (
+                self.step_reset is not None and abs(med - vv[-1]) > self.step_reset)):
             del tt[:]
             del vv[:]
         tt.append(pt)
@@ -244,15 +279,13 @@ class RobustTrend:
         return r
 
     def points_between(self, t0: float, t1: float) -> list[float]:
-        """Bucket medians with point time in [t0, t1], plus the open bucket's median if its
-        samples fall in the range (for baselines)."""
+        """Bucket points with point time in [t0, t1], plus the open bucket's value from its
+        samples in the range (for baselines)."""
         out = [v for t, v in zip(self._t, self._v) if t0 <= t <= t1]
         if self._bv:
             vals = [v for t, v in zip(self._bt, self._bv) if t0 <= t <= t1]
             if vals:
-                s = sorted(vals)
-                n = len(s)
-                out.append(s[n // 2] if n % 2 else 0.5 * (s[n // 2 - 1] + s[n // 2]))
+                out.append(bucket_value(vals))
         return out
 
     def last_point(self) -> tuple[float, float] | None:
