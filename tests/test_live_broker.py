@@ -140,6 +140,22 @@ def test_ack_command_is_stored_for_audit(broker, tmp_path):
         svc.stop()
 
 
+def test_demo_through_a_real_broker(broker, tmp_path):
+    import subprocess
+    import sys
+
+    from live_fixtures import ROOT
+    db = f"sqlite:///{tmp_path / 'demo.db'}"
+    r = subprocess.run([sys.executable, "-m", "hemostream.cli", "demo", "--broker",
+                        broker.url(), "--speed", "200", "--duration", "40", "--db", db,
+                        "--every", "0.2"], cwd=ROOT, capture_output=True, text=True,
+                       timeout=120)
+    assert r.returncode == 0, r.stderr
+    assert f"through {broker.url()}" in r.stdout and f"The data is in {db}" in r.stdout
+    assert stored_messages(db) > 20
+    assert repeated_identities(db) == []
+
+
 def _iso(t: float) -> str:
     from hemostream.core.processor import iso
     return iso(t)

@@ -14,6 +14,7 @@ consistent (no clock-skew rejects) and the stored times are the scenario's, move
 from __future__ import annotations
 
 import asyncio
+import itertools
 import json
 import logging
 import signal
@@ -23,7 +24,7 @@ import time
 from collections import deque
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Callable, Iterable, TextIO
+from typing import Any, Callable, Iterable, Iterator, TextIO
 
 from ..core.config import Config
 from ..core.processor import iso
@@ -43,39 +44,49 @@ EXAMPLE_RECORDING = (Path(__file__).resolve().parent.parent.parent / "simulators
 
 
 def demo_lines(scenario: str | None = None, duration_s: float | None = None,
-               seed: int = 0) -> tuple[list[dict], str]:
-    """The demo ward's recording lines and a sentence saying where they come from.
-
-    From the simulators (``simulators.generate``) when they are installed; otherwise the
-    shipped example recording, and the sentence says so.
-    """
-    why = "the simulators package has no generate() yet"
+               seed: int = 0) -> tuple[Iterator[dict], str]:
+    """The demo ward's recording lines (lazily, in arrival order) and a sentence saying where
+    they come from: the simulators' demo ward when they are installed, otherwise the shipped
+    example recording, and the sentence says so."""
+    why = "the simulators are not installed"
+    missing_generate = "the simulators package has no generate() (reinstall: pip install -e .)"
     try:
         import simulators
-        generate = getattr(simulators, "generate")
-    except (ImportError, AttributeError):
+    except ImportError:
         generate = None
+    else:
+        generate = getattr(simulators, "generate", None)
+        if generate is None:
+            why = missing_generate
     if generate is not None:
-        name = scenario or getattr(simulators, "DEMO_SCENARIO", None) or "demo_ward"
+        name = (scenario or getattr(simulators, "DEMO_WARD", None)
+                or getattr(simulators, "DEMO_SCENARIO", None) or "demo")
         try:
-            lines = [r for r in (as_record(x) for x in
-                                 generate(name, duration_s=duration_s, seed=seed)) if r]
-            return lines, f"simulated ward (scenario {name!r}, seed {seed})"
+            it = iter(generate(name, duration_s=duration_s, seed=seed))
+            first = next(it, None)
         except Exception as e:  # noqa: BLE001 - say why, and still show something
             if scenario:
                 raise
             why = f"the simulators could not make scenario {name!r}: {e}"
-    lines = []
-    with open(EXAMPLE_RECORDING, "rb") as f:
-        for line in f:
-            rec = as_record(line)
-            if rec is not None:
-                lines.append(rec)
-    lines = close_gaps(lines)
-    if duration_s is not None and lines:
-        t0 = _parse(lines[0]["rx"])
-        lines = [r for r in lines if _parse(r["rx"]) - t0 <= duration_s]
-    return lines, f"shipped example recording {EXAMPLE_RECORDING.name} ({why})"
+        else:
+            lines = (r for r in (as_record(x) for x in itertools.chain([first], it)
+                                 if x is not None) if r)
+            return close_gaps(lines), f"simulated ward (scenario {name!r}, seed {seed})"
+    if scenario:
+        raise ValueError(f"scenario {scenario!r}: {why}")
+
+    def example() -> Iterator[dict]:
+        t0 = None
+        with open(EXAMPLE_RECORDING, "rb") as f:
+            for rec in close_gaps(r for r in map(as_record, f) if r is not None):
+                if duration_s is not None and isinstance(rec.get("rx"), str):
+                    t = _parse(rec["rx"])
+                    t0 = t if t0 is None else t0
+                    if t - t0 > duration_s:
+                        return
+                yield rec
+
+    return example(), f"shipped example recording {EXAMPLE_RECORDING.name} ({why})"
 
 
 class ScaledClock:
@@ -134,7 +145,11 @@ class Summary:
         out = []
         for key in sorted(self.beds):
             b = self.beds[key]
-            v = b["values"]
+            v = dict(b["values"])
+            if "MAP" not in v:        # a measured mean pressure when no MAP was derived
+                mean = v.get("ABP_MEAN", v.get("NIBP_MEAN"))
+                if mean is not None:
+                    v["MAP"] = mean
             shown = " ".join(f"{p} {_fmt(v[p])}" for p in
                              ("HR", "MAP", "CVP", "CO", "CI", "SVR", "SI", "SPO2") if p in v)
             st = b["alarms"]
@@ -160,7 +175,7 @@ def _fmt(v: Any) -> str:
     return f"{v:.2f}" if abs(v) < 10 else f"{v:.0f}"
 
 
-async def _feed_inproc(broker: InprocBroker, lines: list[dict], clock: ScaledClock,
+async def _feed_inproc(broker: InprocBroker, lines: Iterable[dict], clock: ScaledClock,
                        stop: asyncio.Event) -> int:
     n = 0
     for rec in lines:
@@ -187,12 +202,17 @@ async def run_demo(cfg: Config, db_url: str, *, speed: float = 1.0,
                    install_signals: bool = True) -> dict:
     """Run the demo until the stream ends or Ctrl-C; returns a summary dict."""
     lines, source = demo_lines(scenario, duration_s, seed)
+    # its own client identifier, status topic and a short-lived session, so a demo on a
+    # shared broker neither takes over nor outlives the real service's session
+    cfg = cfg.model_copy(update={
+        "instance": f"{cfg.instance}-demo",
+        "broker": cfg.broker.model_copy(update={
+            "client_id": f"{cfg.broker.client_id}-demo", "session_expiry_s": 300})})
     clock = ScaledClock(speed)
-    if lines:
-        rt = Retimer(clock.start, 1.0)           # shift only: the clock carries the speed
-        lines = [rt.record(r) for r in lines]
+    rt = Retimer(clock.start, 1.0)               # shift only: the clock carries the speed
+    lines = (rt.record(r) for r in lines)
     print(f"CAUTION: {CAUTION}", file=out)
-    print(f"demo: {len(lines)} messages from the {source}, at {speed:g} x real time, "
+    print(f"demo: the {source}, at {speed:g} x real time, "
           f"{'through ' + broker_url if broker_url else 'through the in-process broker'}, "
           f"into {db_url}", file=out)
     out.flush()

@@ -17,7 +17,7 @@ import time
 import uuid
 from dataclasses import dataclass
 from datetime import datetime, timezone
-from typing import Any, Callable, Iterable
+from typing import Any, Callable, Iterable, Iterator
 
 from ..core.config import BrokerConfig
 from ..core.processor import epoch, iso
@@ -99,11 +99,16 @@ def map_times(rec: dict, fn: Callable[[float], float]) -> dict:
     return out
 
 
-def close_gaps(recs: list[dict], max_gap_s: float = 5.0, keep_s: float = 1.0) -> list[dict]:
+def close_gaps(recs: Iterable[dict], max_gap_s: float = 5.0,
+               keep_s: float = 1.0) -> Iterator[dict]:
     """Shorten every silence longer than ``max_gap_s`` between arrivals to ``keep_s``, moving
     all later times (arrival and measurement) back by the same amount, so a demo does not sit
-    idle through a recording's quiet stretches."""
-    out = []
+    idle through a recording's quiet stretches.
+
+    >>> recs = [{"rx": "2026-12-01T08:00:00Z"}, {"rx": "2026-12-01T08:05:00Z"}]
+    >>> [r["rx"] for r in close_gaps(recs)]
+    ['2026-12-01T08:00:00Z', '2026-12-01T08:00:01.000Z']
+    """
     prev = None
     shift = 0.0
     for rec in recs:
@@ -117,8 +122,7 @@ def close_gaps(recs: list[dict], max_gap_s: float = 5.0, keep_s: float = 1.0) ->
                 if prev is not None and t - prev > max_gap_s:
                     shift += t - prev - keep_s
                 prev = t
-        out.append(map_times(rec, lambda x, s=shift: x - s) if shift else rec)
-    return out
+        yield map_times(rec, lambda x, s=shift: x - s) if shift else rec
 
 
 def payload_bytes(payload: Any) -> bytes:
@@ -158,23 +162,25 @@ async def publish_recording_lines(lines_iter: Iterable[Any], url: str, speed: fl
                                   or f"hemostream-pub-{uuid.uuid4().hex[:8]}"})
     t = MqttTransport(cfg, persistent=False)
     summary = PublishSummary()
-    recs = [r for r in (as_record(x) for x in lines_iter)]
-    summary.unreadable = sum(r is None for r in recs)
-    recs = [r for r in recs if r is not None and isinstance(r.get("topic"), str)
-            and "payload" in r]
-    summary.lines = len(recs)
-    if not recs:
-        return summary
     paced = bool(speed)
-    if retime:
-        if paced:
-            rt = Retimer(clock(), speed)
-        else:
-            last = max((_parse(r["rx"]) for r in recs if isinstance(r.get("rx"), str)),
-                       default=None)
-            first = next((_parse(r["rx"]) for r in recs if isinstance(r.get("rx"), str)),
-                         None)
-            rt = Retimer(clock() - ((last - first) if last is not None else 0.0))
+
+    def readable(items: Iterable[Any]) -> Iterator[dict]:
+        for x in items:
+            r = as_record(x)
+            if r is None or not isinstance(r.get("topic"), str) or "payload" not in r:
+                summary.unreadable += 1
+                continue
+            summary.lines += 1
+            yield r
+
+    recs: Iterable[dict] = readable(lines_iter)
+    if retime and paced:
+        rt = Retimer(clock(), speed)
+        recs = (rt.record(r) for r in recs)
+    elif retime:                    # as fast as possible: the recording ends now
+        recs = list(recs)
+        rxs = [_parse(r["rx"]) for r in recs if isinstance(r.get("rx"), str)]
+        rt = Retimer(clock() - ((rxs[-1] - rxs[0]) if rxs else 0.0))
         recs = [rt.record(r) for r in recs]
     t_start = time.monotonic()
     unconfirmed: list[tuple[Any, str, bytes]] = []
