@@ -146,9 +146,11 @@ def cmd_demo(args) -> int:
     _logging("DEBUG" if args.verbose else "WARNING")
     if db.startswith("sqlite:///"):
         Path(db[len("sqlite:///"):]).parent.mkdir(parents=True, exist_ok=True)
+    dashboard = not args.plain and sys.stdout.isatty() and sys.stdin.isatty()
     result = asyncio.run(run_demo(cfg, db, speed=args.speed, duration_s=args.duration,
                                   scenario=args.scenario, seed=args.seed,
-                                  broker_url=args.broker, every_s=args.every))
+                                  broker_url=args.broker, every_s=args.every,
+                                  dashboard=dashboard, operator=args.operator))
     if result.get("fatal"):
         print(f"error: {result['fatal']}", file=sys.stderr)
     return result["exit"]
@@ -200,8 +202,8 @@ def add_parsers(sub) -> None:
                    help="database URL (default: sqlite:///hemostream-demo.db)")
     d.add_argument("--broker", metavar="URL", help="run the demo through this real broker")
     d.add_argument("--config", metavar="FILE", help="TOML configuration (default: shipped)")
-    d.add_argument("--speed", type=float, default=1.0, metavar="N",
-                   help="N x real time (default 1)")
+    d.add_argument("--speed", type=float, default=10.0, metavar="N",
+                   help="N x real time (default 10; 1 for real time)")
     d.add_argument("--duration", type=float, metavar="SECONDS",
                    help="stop after this much of the scenario (default: all of it)")
     d.add_argument("--scenario", metavar="NAME", help="simulator scenario (default: the "
@@ -209,5 +211,9 @@ def add_parsers(sub) -> None:
     d.add_argument("--seed", type=int, default=0)
     d.add_argument("--every", type=float, default=2.0, metavar="SECONDS",
                    help="how often the summary is printed (wall clock)")
+    d.add_argument("--plain", action="store_true", help="print the compact summary even "
+                   "on a terminal (instead of the unit dashboard)")
+    d.add_argument("--operator", metavar="NAME", help="name sent with acknowledge / pause "
+                   "audio from the dashboard (stored for audit)")
     d.add_argument("-v", "--verbose", action="store_true", help="log the pipeline too")
     d.set_defaults(func=cmd_demo)

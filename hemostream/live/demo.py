@@ -199,7 +199,8 @@ async def run_demo(cfg: Config, db_url: str, *, speed: float = 1.0,
                    seed: int = 0, broker_url: str | None = None,
                    out: TextIO = sys.stdout, every_s: float = 2.0,
                    view: Callable[[str, Any], None] | None = None,
-                   install_signals: bool = True) -> dict:
+                   install_signals: bool = True, dashboard: bool = False,
+                   operator: str | None = None) -> dict:
     """Run the demo until the stream ends or Ctrl-C; returns a summary dict."""
     lines, source = demo_lines(scenario, duration_s, seed)
     # its own client identifier, status topic and a short-lived session, so a demo on a
@@ -207,7 +208,8 @@ async def run_demo(cfg: Config, db_url: str, *, speed: float = 1.0,
     cfg = cfg.model_copy(update={
         "instance": f"{cfg.instance}-demo",
         "broker": cfg.broker.model_copy(update={
-            "client_id": f"{cfg.broker.client_id}-demo", "session_expiry_s": 300})})
+            "client_id": f"{cfg.broker.client_id}-demo", "session_expiry_s": 300,
+            "health_every_s": 1.0})})
     clock = ScaledClock(speed)
     rt = Retimer(clock.start, 1.0)               # shift only: the clock carries the speed
     lines = (rt.record(r) for r in lines)
@@ -253,6 +255,12 @@ async def run_demo(cfg: Config, db_url: str, *, speed: float = 1.0,
             "client_id": f"{cfg.broker.client_id}-view"}), persistent=False)
     svc = Service(cfg, transport, db_url=db_url, clock=clock, log_health=False)
     svc_task = asyncio.create_task(svc.run())
+    dash = None
+    if dashboard:
+        dash = _start_dashboard(svc, clock, loop, source, operator,
+                                broker if broker_url is None else None, watcher)
+        if dash is not None:
+            view = dash[2]
 
     async def watch() -> None:
         while True:
@@ -267,7 +275,9 @@ async def run_demo(cfg: Config, db_url: str, *, speed: float = 1.0,
 
     async def ticker() -> None:
         while True:
-            await asyncio.sleep(every_s)
+            await asyncio.sleep(every_s if dash is None else 0.2)
+            if dash is not None and not dash[0].is_alive():
+                stop.set()                    # q in the dashboard
             if view is None:
                 stamp = iso(clock())[11:19]
                 print(f"[{stamp}] " + CAUTION.split(".")[0] + ".", file=out)
@@ -301,6 +311,9 @@ async def run_demo(cfg: Config, db_url: str, *, speed: float = 1.0,
                    and time.monotonic() < deadline and not svc_task.done()):
                 await asyncio.sleep(0.05)
     finally:
+        if dash is not None:
+            dash[1].set()
+            await asyncio.to_thread(dash[0].join, 5)
         svc.stop()
         code = await svc_task
         for t in (watch_task, tick_task):
@@ -328,19 +341,44 @@ async def run_demo(cfg: Config, db_url: str, *, speed: float = 1.0,
     return result
 
 
-def run_dashboard_thread(view_model, screen_unit: str, clock, send_command,
-                         status) -> tuple[threading.Thread, threading.Event, Any] | None:
-    """Start the rich unit dashboard in a thread, when it is installed and stdout is a
-    terminal; None otherwise (the compact summary is printed instead)."""
-    if not sys.stdout.isatty():
-        return None
+def _start_dashboard(svc: Service, clock: ScaledClock, loop: asyncio.AbstractEventLoop,
+                     source: str, operator: str | None, broker: InprocBroker | None,
+                     watcher) -> tuple[threading.Thread, threading.Event, Callable] | None:
+    """The rich unit dashboard in a thread, fed from the published outputs; acknowledge and
+    audio pause keys send ``cmd`` messages the same way ``hemostream ack`` does. None when the
+    dashboard is not available (the compact summary is printed instead)."""
     try:
-        from ..dashboard import Dashboard, Screen
+        from ..dashboard import Dashboard, Screen, UnitView
     except ImportError:
         return None
+    from ..core.wire import format_time
+    from datetime import datetime, timezone
+
+    model = UnitView()
+    lock = threading.Lock()
+
+    def feed(topic: str, payload: Any) -> None:
+        with lock:
+            model.apply(topic, payload)
+
+    def send_command(bed_key: str, action: str, alarm_id: str) -> None:
+        body = {"v": 1, "time": format_time(datetime.fromtimestamp(clock(), timezone.utc)),
+                "action": action, "alarm": alarm_id, "by": operator or "demo"}
+        data = json.dumps(body, separators=(",", ":")).encode()
+        topic = f"hemo/{bed_key}/cmd"
+        if broker is not None:
+            loop.call_soon_threadsafe(broker.publish, topic, data, 1, False)
+        else:
+            loop.call_soon_threadsafe(watcher.publish, topic, data, 1, False)
+
+    def status() -> dict:
+        h = svc.last_health or {}
+        return {"connected": svc.t.connected, "rate": h.get("messages_per_s", 0.0),
+                "lag_s": (h.get("lag_s") or {}).get("ingest_max")}
+
     stop = threading.Event()
-    dash = Dashboard(view_model, Screen(unit=screen_unit, source="demo"), clock=clock,
-                     send_command=send_command, status=status)
+    dash = Dashboard(model, Screen(unit="demo ward", source=source, operator=operator),
+                     clock=clock, send_command=send_command, status=status, lock=lock)
     th = threading.Thread(target=dash.run, args=(stop,), daemon=True, name="dashboard")
     th.start()
-    return th, stop, dash
+    return th, stop, feed

@@ -267,3 +267,44 @@ async def publish_recording_lines(lines_iter: Iterable[Any], url: str, speed: fl
         await t.disconnect()
         summary.seconds = time.monotonic() - t_start
     return summary
+
+
+def main(argv: list[str] | None = None) -> int:
+    """``python -m hemostream.live.publish RECORDING URL [--speed N]``: a stand-in gateway."""
+    import argparse
+    import sys
+
+    p = argparse.ArgumentParser(prog="python -m hemostream.live.publish",
+                                description="Publish a recording (JSON Lines) to a broker at "
+                                "QoS 1, paced by its arrival times, times moved to now.")
+    p.add_argument("recording", help="recording file, or - for standard input")
+    p.add_argument("url", help="mqtt://host:port or mqtts://host:port")
+    p.add_argument("--speed", type=float, default=1.0,
+                   help="N x real time (0: as fast as possible)")
+    p.add_argument("--config", metavar="FILE",
+                   help="configuration whose [broker] section gives credentials and TLS files")
+    args = p.parse_args(argv)
+    broker = None
+    if args.config:
+        from ..config import load_config
+        broker = load_config(args.config).broker
+    f = sys.stdin.buffer if args.recording == "-" else open(args.recording, "rb")
+    try:
+        s = asyncio.run(publish_recording_lines(f, args.url, args.speed or None,
+                                                broker=broker))
+    except TransportError as e:
+        print(f"error: {e}", file=sys.stderr)
+        return 1
+    except KeyboardInterrupt:
+        return 130
+    finally:
+        if f is not sys.stdin.buffer:
+            f.close()
+    print(f"published {s.published} of {s.lines} messages ({s.unreadable} unreadable lines "
+          f"skipped, {s.resent} resent after {s.reconnects} reconnect(s)) in "
+          f"{s.seconds:.1f} s")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

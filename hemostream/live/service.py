@@ -389,8 +389,8 @@ class Service:
         self.health.outputs(out)
         if out.rejected:
             for r in out.rejected:   # bed ids and categories only: reasons may quote content
-                log.info("rejected a message on %s: %s", r["topic"], r["category"])
-                log.debug("rejected on %s: %s", r["topic"], r["reason"])
+                log.info("rejected a message on %r: %s", r["topic"], r["category"])
+                log.debug("rejected on %r: %s", r["topic"], r["reason"])
         rows = rows_of(out)
         if not rows and not batch:
             return
