@@ -117,7 +117,8 @@ def test_client_certificate_listener(broker, tmp_path):
         assert svc.stop() == 0
     # without a client certificate that listener says no
     with pytest.raises(TransportError):
-        _connect(BrokerConfig(url=broker.url("mtls"), client_id="nocert", ca_file=broker.ca))
+        _connect(BrokerConfig(url=broker.url("mtls"), client_id="nocert", ca_file=broker.ca,
+                              connect_timeout_s=2))
 
 
 def test_acl_gateway_cannot_publish_to_another_beds_topics(broker, tmp_path, monkeypatch):
