@@ -14,7 +14,12 @@ flush or zeroing of it spoils, derived ones included):
      pressure bag as a square wave, a zeroing reads atmosphere: either way no pulse);
    - a value outside ``signature_outside`` (a flush reads about 300 mm[Hg], a zeroing 0);
    - a mean-only channel (CVP) dropping by ``zero_step`` or more to within ``zero_band`` of 0
-     within 10 s of its previous value, and staying there.
+     within 10 s of its previous value, and staying there;
+   - an over-damped trace: the pulse pressure below ``damping_fraction`` of its slow
+     reference (exponential average over ``damping_reference_s``) while the mean stays within
+     ``damping_mean_tolerance`` of its own; only the systolic-dependent values
+     (``damping_spoils``) are left out, the mean stays in use. A real fall in pressure moves
+     the mean too and is not taken for damping.
 
    Common practice (from memory): these are the shapes a flushed or zeroed fluid-filled
    transducer system shows; the thresholds are the project's choice.
@@ -38,7 +43,7 @@ class ArtifactState:
     """Per-bed artifact state."""
 
     __slots__ = ("note_until", "auto_until", "any_until", "sig_since", "prev", "ignored",
-                 "cache_t", "cache")
+                 "cache_t", "cache", "damp_until", "ref")
 
     def __init__(self) -> None:
         self.note_until: dict[str, float] = {}
@@ -49,6 +54,8 @@ class ArtifactState:
         self.ignored: dict[str, None] = {}        # channels whose suspicion was acknowledged
         self.cache_t = float("nan")
         self.cache: frozenset[str] = EMPTY
+        self.damp_until: dict[str, float] = {}    # channel -> damped values excluded until
+        self.ref: dict[str, list[float]] = {}     # channel -> [time, pulse pressure, mean]
 
 
 class ArtifactDetector:
@@ -77,6 +84,9 @@ class ArtifactDetector:
                 plan.append((ch, tuple((p, self.outside.get(p), self.zero_step.get(p))
                                        for p in ps), self.flat.get(ch)))
         self._plan = tuple(plan)
+        self.damp = {ch: (f"{ch}_SYS", f"{ch}_DIA", f"{ch}_MEAN", frac)
+                     for ch, frac in cfg.damping_fraction.items()}
+        self.damp_spoils = {ch: frozenset(ps) for ch, ps in cfg.damping_spoils.items()}
 
     # ------------------------------------------------------------------ notes and statuses
 
@@ -151,6 +161,20 @@ class ArtifactDetector:
                     sys_v, dia_v = fresh.get(fl[0]), fresh.get(fl[1])
                     if sys_v is not None and dia_v is not None and sys_v - dia_v < fl[2]:
                         hit = True
+                dm = self.damp.get(ch)
+                if dm is not None and not hit and dm[0] in new and dm[1] in new \
+                        and dm[2] in new and self._damped(st, ch, dm, t, fresh):
+                    # damped: systolic-dependent values out, the mean stays in use
+                    until = t + cfg.post_hold_s
+                    st.damp_until[ch] = until
+                    if until > st.any_until:
+                        st.any_until = until
+                    st.cache_t = float("nan")
+                    if st.note_until.get(ch, _NINF) >= t or ch in st.ignored:
+                        st.sig_since.pop(ch, None)
+                    elif ch not in st.sig_since:
+                        st.sig_since[ch] = t
+                    continue
                 if hit:
                     until = t + cfg.post_hold_s
                     if st.auto_until.get(ch, _NINF) < until:
@@ -174,6 +198,27 @@ class ArtifactDetector:
                                 st.prev[p] = (t, v)
         return self.excluded(st, t)
 
+    def _damped(self, st: ArtifactState, ch: str, dm: tuple, t: float,
+                fresh: dict[str, float]) -> bool:
+        """Compare pulse pressure and mean with their slow references; update the references
+        with samples that are not damped."""
+        sys_v, dia_v, mean_v = fresh.get(dm[0]), fresh.get(dm[1]), fresh.get(dm[2])
+        if sys_v is None or dia_v is None or mean_v is None:
+            return False
+        pp = sys_v - dia_v
+        ref = st.ref.get(ch)
+        if ref is None:
+            st.ref[ch] = [t, pp, mean_v]
+            return False
+        tol = self.cfg.damping_mean_tolerance
+        if ref[1] > 0 and pp < dm[3] * ref[1] and abs(mean_v - ref[2]) <= tol * abs(ref[2]):
+            return True
+        a = min(1.0, max(0.0, t - ref[0]) / self.cfg.damping_reference_s)
+        ref[0] = t
+        ref[1] += a * (pp - ref[1])
+        ref[2] += a * (mean_v - ref[2])
+        return False
+
     def excluded(self, st: ArtifactState, t: float) -> frozenset[str]:
         if t > st.any_until:
             return EMPTY
@@ -186,6 +231,9 @@ class ArtifactDetector:
         for ch, until in st.auto_until.items():
             if until >= t:
                 out |= self.channels[ch]
+        for ch, until in st.damp_until.items():
+            if until >= t:
+                out |= self.damp_spoils.get(ch, self.channels[ch])
         res = frozenset(out) if out else EMPTY
         st.cache_t = t
         st.cache = res

@@ -71,7 +71,7 @@ def _default_trend_params() -> dict[str, TrendParam]:
         "HR": a(steady_abs=5.0),            # /min
         "MAP": a(steady_abs=5.0),           # mm[Hg]
         "SBP": a(steady_abs=8.0),           # mm[Hg]
-        "CVP": a(steady_abs=0.8, step_reset=3.0),        # mm[Hg]
+        "CVP": a(steady_abs=0.6, step_reset=3.0),        # mm[Hg]
         "PAP_MEAN": a(steady_abs=3.0, step_reset=6.0),   # mm[Hg]
         "PAWP": a(steady_abs=2.0),          # mm[Hg]
         "CO": a(steady_abs=0.15, steady_rel=0.04),   # L/min, or 4 % of the level
@@ -189,6 +189,19 @@ class ArtifactConfig(BaseModel):
     zero_step: dict[str, Annotated[float, Field(gt=0)]] = Field(
         default_factory=lambda: {"CVP": 4.0})
     zero_band: Annotated[float, Field(ge=0)] = 1.0
+    #: over-damped trace (air bubble, clot, kinked line): the pulse pressure falls below this
+    #: fraction of its slow reference while the mean stays within damping_mean_tolerance of
+    #: its own; systolic and diastolic are then wrong, the mean is not (common practice,
+    #: from memory). Channels need SYS, DIA and MEAN values.
+    damping_fraction: dict[str, Annotated[float, Field(gt=0, lt=1)]] = Field(
+        default_factory=lambda: {"ABP": 0.75})
+    damping_mean_tolerance: Annotated[float, Field(gt=0, lt=1)] = 0.15
+    #: time constant of the slow references of pulse pressure and mean (exponential average)
+    damping_reference_s: PosSeconds = 300.0
+    #: what a damped trace spoils (the rest of the channel, its mean and what is computed
+    #: from the mean, stays in use)
+    damping_spoils: dict[str, list[str]] = Field(default_factory=lambda: {
+        "ABP": ["ABP_SYS", "ABP_DIA", "SBP", "PP", "SI"]})
     #: values stay excluded this long after a signature was last seen (ringing, refill)
     post_hold_s: Seconds = 20.0
     #: a signature present longer than this (outside a noted span) is the technical condition
@@ -202,6 +215,9 @@ class ArtifactConfig(BaseModel):
             _check_params(plist, f"channels.{ch}")
         unknown = [c for c in self.note_all_channels if c not in self.channels]
         unknown += [c for c in self.flat_pulse_pressure if c not in self.channels]
+        unknown += [c for c in self.damping_fraction if c not in self.channels]
+        for ch, plist in self.damping_spoils.items():
+            _check_params(plist, f"damping_spoils.{ch}")
         if unknown:
             raise ValueError(f"channel(s) {unknown} are not defined in channels "
                              f"({list(self.channels)})")
