@@ -430,6 +430,35 @@ def test_flat_arterial_trace_is_a_suspected_artifact_not_a_pressure_alarm():
     assert trans(evs, "artifact_suspected") == ["condition_ended", "cleared"]
 
 
+def _abp_mean(sys_, dia, mean):
+    return {"HR": 72.0, "ABP_SYS": sys_, "ABP_DIA": dia, "ABP_MEAN": mean, "MAP": mean,
+            "SBP": sys_, "SI": 72.0 / sys_}
+
+
+def test_damped_trace_keeps_the_mean_and_drops_the_systolic():
+    # an over-damped line reads systolic low and diastolic high around a correct mean
+    # (common practice, from memory): no SBP or SI alarm from it, MAP still used, and a
+    # lasting one is a technical condition
+    eng = RulesEngine()
+    evs = stream(eng, T0, T0 + 400, lambda t: _abp_mean(120.0, 70.0, 87.0))
+    evs += stream(eng, T0 + 400, T0 + 700, lambda t: _abp_mean(95.0, 78.0, 86.0))
+    assert only(evs, "SBP_low") == []
+    assert [e.details["channels"] for e in only(evs, "artifact_suspected")
+            if e.transition == "raised"] == [["ABP"]]
+    excl = eng.art.excluded(eng._beds[BED].art, T0 + 699)
+    assert {"ABP_SYS", "SBP", "SI"} <= excl and "MAP" not in excl
+
+
+def test_a_real_fall_in_pressure_is_not_taken_for_damping():
+    eng = RulesEngine()
+    stream(eng, T0, T0 + 400, lambda t: _abp_mean(120.0, 70.0, 87.0))
+    # systolic and mean both fall: hypotension, not damping
+    evs = stream(eng, T0 + 400, T0 + 460, lambda t: _abp_mean(72.0, 48.0, 56.0))
+    assert [e.transition for e in only(evs, "SBP_low")] == ["raised"]
+    assert [e.transition for e in only(evs, "MAP_low")] == ["raised"]
+    assert only(evs, "artifact_suspected") == []
+
+
 def test_noted_flush_raises_nothing():
     eng = RulesEngine()
     evs = stream(eng, T0, T0 + 60, lambda t: _abp(120.0, 70.0))

@@ -264,6 +264,23 @@ def test_threshold_is_configurable():
     assert res.details["outcome"] == "not_responsive"
 
 
+def test_second_bolus_during_the_window_uses_what_was_collected():
+    eng = RulesEngine()
+    for k in range(400):
+        v = {"SV": 60.0, "CVP": 6.0, "HR": 80.0}
+        eng.on_values(BED, T0 + k, v, frozenset(v), {}, DEV)
+    eng.on_note(BED, T0 + 400, "fluid_bolus", volume_ml=500, over_min=5)
+    for k in range(400, 700):       # the window opens at the end (700 s) minus 60 s
+        v = {"SV": 69.0, "CVP": 7.0, "HR": 80.0}
+        eng.on_values(BED, T0 + k, v, frozenset(v), {}, DEV)
+    evs = eng.on_note(BED, T0 + 700, "fluid_bolus", volume_ml=250, over_min=5)
+    res = [e for e in evs if e.transition == "result"][0]
+    assert res.details["outcome"] == "responsive"
+    assert res.details["change_pct"] == pytest.approx(15.0)          # (69 - 60) / 60
+    assert "cut short" in res.details["note"]
+    assert [e.transition for e in evs][-1] == "opened"
+
+
 def test_fluid_challenge_without_baseline_is_not_evaluable():
     eng = RulesEngine()
     evs = eng.on_note(BED, T0, "fluid_bolus", volume_ml=500, over_min=10)
@@ -392,6 +409,9 @@ def test_bed_view_exposes_trend_directions():
     assert tr["CVP"]["direction"] == "falling"      # -2 mm[Hg] per 10 min
     assert tr["CO"]["direction"] == "steady"
     assert tr["HR"]["slope_per_10min"] == pytest.approx(10, abs=0.2)
+    dirs = eng.trend_directions(BED)
+    assert dirs["HR"] == "rising" and dirs["CVP"] == "falling"
+    assert eng.trend_directions("WARD7/none") == {}
     assert set(RulesEngine().bed_view("WARD7/none")) >= {"trends", "alarms", "profile",
                                                         "fluid_challenge"}
 

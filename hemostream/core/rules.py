@@ -854,7 +854,7 @@ class RulesEngine:
             fcc.responsive_change_pct, "window_start": fc.win_start, "window_end": fc.win_end,
             "after_samples": len(fc.vals), "cvp_baseline": fc.cvp_baseline}
         value = None
-        if interrupted:
+        if interrupted and len(fc.vals) < fcc.min_after_samples:
             res.update(outcome="not_evaluable", reason="a new fluid bolus began before the "
                                                        "window ended")
         elif len(fc.vals) < fcc.min_after_samples:
@@ -869,6 +869,8 @@ class RulesEngine:
                        responsive=change >= fcc.responsive_change_pct - 1e-9,
                        outcome="responsive" if change >= fcc.responsive_change_pct - 1e-9
                        else "not_responsive")
+            if interrupted:
+                res["note"] = "window cut short by a new fluid bolus"
             if fc.cvp_vals and fc.cvp_baseline is not None:
                 ca = _median(fc.cvp_vals)
                 res.update(cvp_after=ca, cvp_change=ca - fc.cvp_baseline)
@@ -994,6 +996,21 @@ class RulesEngine:
                 "profile_text": PROFILE_TEXT.get(b.profile) if b.profile else None,
                 "fluid_challenge": dict(b.fc_last) if b.fc_last else None,
                 "fluid_challenge_open": b.fc is not None}
+
+    def trend_directions(self, bed: str) -> dict[str, str]:
+        """Current trend direction per trended parameter that has one (cheap: for publishing
+        with every derived message)."""
+        b = self._beds.get(bed)
+        if b is None:
+            return {}
+        tc = self.cfg.trends
+        out: dict[str, str] = {}
+        for p, tr in b.trends.items():
+            r = tr.reading(b.last_t)
+            if r is not None:
+                sa, sr = self._trend_cfg[p]
+                out[p] = r.direction(sa, sr, tc.min_tau)
+        return out
 
     def alarm_state(self, bed: str) -> dict[str, Any]:
         """Current alarm state of the bed (retained on ``hemo/<unit>/<bed>/alarm``)."""
