@@ -163,6 +163,9 @@ def build_parser() -> argparse.ArgumentParser:
     from .live.cli import add_parsers as add_live
     add_live(sub)
 
+    from .dashboard.watch import add_parser as add_watch
+    add_watch(sub)
+
     try:
         from simulators.cli import add_parser as add_simulate
     except ImportError:
