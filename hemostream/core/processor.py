@@ -410,9 +410,7 @@ class Processor:
             if nonvalid:
                 body["status"] = nonvalid
             if self.rules is not None:
-                body["trends"] = {p: v["direction"] for p, v in
-                                  self.rules.bed_view(bed.key).get("trends", {}).items()
-                                  if v.get("direction")}
+                body["trends"] = self.rules.trend_directions(bed.key)
             self.out.publish.append((f"hemo/{bed.unit}/{bed.bed}/derived", body, False))
 
     def _admit(self, bed: _Bed, mid: int, msg: AdmitMessage, t: float, rx: float) -> None:
