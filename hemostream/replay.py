@@ -9,8 +9,11 @@ from datetime import datetime
 from pathlib import Path
 from typing import Any, Callable
 
+from pydantic import BaseModel, ConfigDict, StrictStr, ValidationError
+
 from .core.config import Config
-from .core.processor import Processor, epoch
+from .core.processor import Processor, RecordingLineBytes, epoch
+from .core.wire import ObsMessage, Time
 from .store import Writer, load_resume, open_engine, rows_of
 
 
@@ -54,8 +57,33 @@ def _parse_rx(v: Any) -> float:
     return epoch(t)
 
 
+class _ObsLine(BaseModel):
+    """A recording line holding a well-formed obs message: parsed in one pass (fast path)."""
+
+    model_config = ConfigDict(extra="ignore")
+    rx: Time
+    topic: StrictStr
+    payload: ObsMessage
+
+
+_validate_obs_line = _ObsLine.model_validate_json
+
+
 def feed_line(proc: Processor, line: bytes, lineno: int, max_bytes: int) -> float | None:
-    """Feed one recording line to the processor; return its arrival time if readable."""
+    """Feed one recording line to the processor; return its arrival time if readable.
+
+    Lines that look like obs messages are first parsed and validated in one pass; anything
+    that fails takes the general path, which finds and words the problem.
+    """
+    if b'/obs"' in line and len(line) <= max_bytes:
+        try:
+            rec = _validate_obs_line(line)
+        except ValidationError:
+            pass
+        else:
+            rx = epoch(rec.rx)
+            proc.feed_obs(rec.topic, rec.payload, rx, RecordingLineBytes(line))
+            return rx
     try:
         rec = json.loads(line)
     except (ValueError, UnicodeDecodeError) as e:

@@ -166,3 +166,13 @@ def test_replay_bad_database_url_is_clear_error(handmade, tmp_path):
     from hemostream.store import StoreError
     with pytest.raises(StoreError, match="cannot open database"):
         replay_file(handmade, f"sqlite:///{tmp_path}/no/such/dir/x.db")
+
+
+def test_reject_inside_a_good_line_keeps_the_payload_bytes(tmp_path, db_url):
+    line = _line("2026-12-01T10:01:00.1Z", 10, "2026-12-01T10:01:00Z", 900)   # HR 900
+    p = tmp_path / "r.jsonl"
+    p.write_text(line + "\n")
+    replay_file(p, db_url)
+    rej = list(query.rows(open_engine(db_url, create=False), "rejected"))
+    assert len(rej) == 1 and rej[0]["category"] == "implausible"
+    assert json.loads(rej[0]["raw"]) == json.loads(line)["payload"]

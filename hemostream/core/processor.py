@@ -166,6 +166,11 @@ class _Dedup:
         return False
 
 
+class RecordingLineBytes(bytes):
+    """A whole recording line standing in for its payload (the replay's fast path); a reject
+    stores the payload part of it, like any other reject."""
+
+
 class Reject(Exception):
     def __init__(self, category: str, reason: str) -> None:
         super().__init__(reason)
@@ -202,6 +207,7 @@ class Processor:
         self._max_age = dict(self.cfg.derive.max_age_s)
         self._bsa_fn = bsa_dubois if self.cfg.derive.bsa_formula == "dubois" else bsa_mosteller
         self._units = {u.id: set(u.beds) for u in self.cfg.units}
+        self._topics: dict[str, Any] = {}
         # (param, unit) -> (factor, offset, canonical unit, plausible low, high), precomputed
         # for every valid pairing so the per-observation work is one dictionary look-up
         self._conv: dict[tuple[str, str], tuple[float, float, str, float, float]] = {}
@@ -239,11 +245,24 @@ class Processor:
 
     # ------------------------------------------------------------------ internals
 
-    def _feed(self, topic: str, payload: bytes | str | dict, rx: float) -> None:
-        ing = self.cfg.ingest
-        if not isinstance(payload, dict) and len(payload) > ing.max_payload_bytes:
-            raise Reject("too_large", f"payload is {len(payload)} bytes; the limit is "
-                                      f"{ing.max_payload_bytes} bytes (not parsed)")
+    def feed_obs(self, topic: str, msg: ObsMessage, rx: float,
+                 payload: bytes | str | dict) -> None:
+        """Process an ``obs`` message that was already validated against :class:`ObsMessage`
+        (the replay's fast path parses whole recording lines in one go). ``payload`` is kept
+        for the raw bytes of any reject."""
+        try:
+            tp = self._route(topic)
+            if tp.kind != "obs":
+                raise Reject("bad_topic", f"topic {topic!r}: not an obs topic")
+            self._accept(tp, topic, msg, rx, payload)
+        except Reject as r:
+            self._reject(r.category, r.reason, topic, payload, rx)
+
+    def _route(self, topic: str):
+        """The parsed topic, checked against the served units (valid ones are cached)."""
+        tp = self._topics.get(topic)
+        if tp is not None:
+            return tp
         try:
             tp = parse_topic(topic)
         except TopicError as e:
@@ -259,6 +278,16 @@ class Processor:
             if beds and tp.bed not in beds:
                 raise Reject("bed_not_configured", f"topic {topic!r}: bed {tp.bed!r} is not "
                              f"configured for unit {tp.unit!r}")
+        if len(self._topics) < 200_000:
+            self._topics[topic] = tp
+        return tp
+
+    def _feed(self, topic: str, payload: bytes | str | dict, rx: float) -> None:
+        ing = self.cfg.ingest
+        if not isinstance(payload, dict) and len(payload) > ing.max_payload_bytes:
+            raise Reject("too_large", f"payload is {len(payload)} bytes; the limit is "
+                                      f"{ing.max_payload_bytes} bytes (not parsed)")
+        tp = self._route(topic)
         model = PAYLOAD_MODELS[tp.kind]
         try:
             if isinstance(payload, dict):
@@ -267,12 +296,16 @@ class Processor:
                 msg = model.model_validate_json(payload)
         except ValidationError as e:
             raise Reject(_category(e), format_validation_error(e)) from None
+        self._accept(tp, topic, msg, rx, payload)
+
+    def _accept(self, tp, topic: str, msg: Any, rx: float, payload: bytes | str | dict) -> None:
+        ing = self.cfg.ingest
         t = epoch(msg.time)
         if t - rx > ing.max_clock_skew_s:
             raise Reject("clock_skew", f"time: {msg.time.isoformat()} is {t - rx:.0f} s ahead "
                          f"of arrival {iso(rx)} (limit {ing.max_clock_skew_s:g} s); "
                          "check the gateway's clock")
-        bed = self._bed(tp.unit, tp.bed)
+        bed = self.beds.get((tp.unit, tp.bed)) or self._bed(tp.unit, tp.bed)
         if tp.kind == "obs":
             self._obs(bed, topic, msg, t, rx, payload)
         else:
@@ -483,6 +516,11 @@ class Processor:
     def _reject(self, category: str, reason: str, topic: str, payload: bytes | str | dict,
                 rx: float | None, obs_index: int | None = None, device: str | None = None,
                 seq: int | None = None) -> None:
+        if isinstance(payload, RecordingLineBytes):
+            try:
+                payload = json.loads(payload)["payload"]
+            except (ValueError, KeyError, TypeError):
+                pass
         if isinstance(payload, dict):
             raw = json.dumps(payload, separators=(",", ":"), default=str).encode()
         elif isinstance(payload, str):
