@@ -416,29 +416,32 @@ class Processor:
         derived, eff = derive_all(cur, bed.bsa)
         self.counters.derived_computed += len(derived)
         st = self.cfg.store
+        every, band = st.derived_every_s, st.derived_deadband
         stored = bed.stored
-        fresh: dict[str, float] = {p: c.value for p, c in cur.items()}
+        fresh: dict[str, float] = {p: c[0] for p, c in cur.items()}
         for name, c in eff.items():
-            fresh[name] = c.value
-        publish_vals = {}
+            fresh[name] = c[0]
+        rows = self.out.derived
+        bed_id = bed.id
+        n_stored = 0
         for d in derived:
-            fresh[d.param] = d.value
-            new.add(d.param)
-            publish_vals[d.param] = d.value
-            last = stored.get(d.param)
-            if (last is None or now - last[0] >= st.derived_every_s
-                    or abs(d.value - last[1]) > st.derived_deadband * abs(last[1])):
-                stored[d.param] = (now, d.value)
-                self.out.derived.append({
-                    "bed_id": bed.id, "param": d.param, "time": now, "value": d.value,
-                    "unit": DERIVED_UNITS[d.param], "inputs": inputs_json(d.inputs)})
-                self.counters.derived_stored += 1
+            param, value = d[0], d[1]
+            fresh[param] = value
+            last = stored.get(param)
+            if (last is None or now - last[0] >= every
+                    or abs(value - last[1]) > band * abs(last[1])):
+                stored[param] = (now, value)
+                rows.append({"bed_id": bed_id, "param": param, "time": now, "value": value,
+                             "unit": DERIVED_UNITS[param], "inputs": inputs_json(d[2])})
+                n_stored += 1
+        self.counters.derived_stored += n_stored
+        new.update([d[0] for d in derived])
         if self.rules is not None:
             self._rule_events(self.rules.on_values(bed.key, now, fresh, frozenset(new),
                                                    nonvalid, device))
         if self.publish:
             body: dict[str, Any] = {
-                "v": 1, "time": iso(now), "values": publish_vals,
+                "v": 1, "time": iso(now), "values": {d[0]: d[1] for d in derived},
                 "measured": {p: [c.value, iso(c.time)] for p, c in cur.items()}}
             if nonvalid:
                 body["status"] = nonvalid
