@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import json
 import time as _time
-from dataclasses import dataclass, field
+from dataclasses import dataclass, fields
 from datetime import datetime
 from pathlib import Path
 from typing import Any, Callable
@@ -12,25 +12,19 @@ from typing import Any, Callable
 from pydantic import BaseModel, ConfigDict, StrictStr, ValidationError
 
 from .core.config import Config
-from .core.processor import Processor, RecordingLineBytes, epoch
+from .core.processor import Counters, Processor, RecordingLineBytes, epoch
 from .core.wire import ObsMessage, Time
 from .store import Writer, load_resume, open_engine, rows_of
 
 
 @dataclass
-class ReplaySummary:
-    path: str
-    db_url: str
+class ReplaySummary(Counters):
+    """The core's counters for the whole replay, plus what the file and the clock say."""
+
+    path: str = ""
+    db_url: str = ""
     lines: int = 0
     blank_lines: int = 0
-    messages: int = 0
-    observations: int = 0
-    duplicates: int = 0
-    late: int = 0
-    derived_computed: int = 0
-    derived_stored: int = 0
-    alarm_events: int = 0
-    rejected: dict[str, int] = field(default_factory=dict)
     seconds: float = 0.0
 
     @property
@@ -175,15 +169,9 @@ def replay_file(path: str | Path, db_url: str | None = None, config: Config | No
         engine.dispose()
     if progress is not None:
         progress(total, total)
-    c = proc.counters
-    summary.messages = c.messages
-    summary.observations = c.observations
-    summary.duplicates = c.duplicates
-    summary.late = c.late
-    summary.derived_computed = c.derived_computed
-    summary.derived_stored = c.derived_stored
-    summary.alarm_events = c.alarm_events
-    summary.rejected = dict(sorted(c.rejected.items()))
+    for f in fields(Counters):
+        setattr(summary, f.name, getattr(proc.counters, f.name))
+    summary.rejected = dict(sorted(summary.rejected.items()))
     summary.seconds = _time.perf_counter() - t0
     return summary
 
