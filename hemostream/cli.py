@@ -166,6 +166,9 @@ def build_parser() -> argparse.ArgumentParser:
     from .dashboard.watch import add_parser as add_watch
     add_watch(sub)
 
+    from .review.cli import add_parsers as add_review
+    add_review(sub)
+
     try:
         from simulators.cli import add_parser as add_simulate
     except ImportError:
