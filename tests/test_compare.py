@@ -241,10 +241,6 @@ def test_cli_errors(tmp_path, capsys):
     assert "cannot read the file" in capsys.readouterr().err
 
 
-@pytest.mark.xfail(reason="hemostream/core/processor.py passes the effective SBP and MAP (from "
-                   "a measured ABP_SYS / ABP_MEAN) to the rules in `fresh` but not in `new`, "
-                   "so the shipped SBP_low and MAP_low limits never evaluate on a bed with "
-                   "an arterial line; reported, to be fixed in the core", strict=False)
 def test_shipped_pressure_limits_fire_on_an_arterial_line(tmp_path):
     """Under the shipped defaults (SBP low 80, MAP low 60, both high priority, 10 s delay:
     configs/rules.toml), 60 s of an arterial line reading 70/35, mean 45, must raise both."""

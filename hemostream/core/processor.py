@@ -80,6 +80,15 @@ def _short(v: Any) -> str:
     return r if len(r) <= 60 else r[:57] + "..."
 
 
+#: where each effective value of :func:`derive_all` can come from
+EFFECTIVE_SOURCES = {
+    "MAP": frozenset({"ABP_MEAN", "ABP_SYS", "ABP_DIA", "NIBP_MEAN", "NIBP_SYS", "NIBP_DIA"}),
+    "SBP": frozenset({"ABP_SYS", "NIBP_SYS"}),
+    "PAP_MEAN": frozenset({"PAP_MEAN", "PAP_SYS", "PAP_DIA"}),
+    "HR": frozenset({"HR", "PR"}), "SV": frozenset({"SV", "HR", "PR", "CO"}),
+    "CO": frozenset({"CO", "HR", "PR", "SV"}),
+}
+
 #: column order of the observation row tuples
 OBSERVATION_COLUMNS = ("message_id", "bed_id", "param", "time", "value", "unit", "raw_value",
                        "raw_unit", "status", "late")
@@ -421,6 +430,10 @@ class Processor:
         fresh: dict[str, float] = {p: c[0] for p, c in cur.items()}
         for name, c in eff.items():
             fresh[name] = c[0]
+            # an effective value (MAP, SBP ...) taken from a measured one is new when any of
+            # its possible sources is; otherwise its limits and trends would never see it
+            if name not in new and not new.isdisjoint(EFFECTIVE_SOURCES[name]):
+                new.add(name)
         rows = self.out.derived
         bed_id = bed.id
         n_stored = 0
