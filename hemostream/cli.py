@@ -174,8 +174,25 @@ def build_parser() -> argparse.ArgumentParser:
     except ImportError:
         pass
     else:
-        add_simulate(sub)
+        add_simulate(sub, publisher=_publish_lines)
     return p
+
+
+def _publish_lines(lines, url: str, speed: float | None) -> int:
+    """``simulate --publish``: stream recording lines to a broker at QoS 1 (the live shell)."""
+    import asyncio
+
+    from .live.publish import publish_recording_lines
+    from .live.transport import TransportError
+    try:
+        s = asyncio.run(publish_recording_lines(lines, url, speed))
+    except TransportError as e:
+        err.print(f"[red]error:[/] {e}", highlight=False)
+        return 1
+    except KeyboardInterrupt:
+        return 130
+    err.print(f"published {s.published} messages to {url}")
+    return 0
 
 
 def main(argv: list[str] | None = None) -> int:
