@@ -69,17 +69,25 @@ def fmt_age(seconds: float) -> str:
     return f"{seconds // 3600:.0f}h"
 
 
-def sparkline(values, width: int) -> str:
+def sparkline(values, width: int, min_span: float = 0.0) -> str:
     """Unicode block sparkline of the last ``width`` values; gaps (None) as spaces.
+
+    The vertical scale covers at least ``min_span`` around the values, so measurement noise
+    does not look like a swing.
 
     >>> sparkline([1, 2, 3, None, 3], 5)
     '▁▄█ █'
+    >>> sparkline([90, 91, 90], 3, min_span=20)
+    '▄▅▄'
     """
     vals = list(values)[-width:]
     nums = [v for v in vals if v is not None]
     if not nums:
         return " " * len(vals)
     lo, hi = min(nums), max(nums)
+    if hi - lo < min_span:
+        mid = (hi + lo) / 2
+        lo, hi = mid - min_span / 2, mid + min_span / 2
     span = hi - lo or 1.0
     return "".join(" " if v is None else SPARK[min(7, int((v - lo) / span * 7.999))]
                    for v in vals)
@@ -172,8 +180,11 @@ def tile(b: BedState, now: float, width: int, selected: bool) -> Panel:
         Text.assemble(_pair("SVR", value_text(b, "SVR", now)), "  ", readout_short(b)),
     ]
     strip_w = max(10, width - 10)
-    lines.append(Text.assemble(("MAP ", "dim"), (sparkline(b.strip_map, strip_w), "green")))
-    lines.append(Text.assemble(("CO  ", "dim"), (sparkline(b.strip_co, strip_w), "green")))
+    # scale floors: 20 mm[Hg] of MAP and 1 L/min of CO fill the strip (project choice)
+    lines.append(Text.assemble(("MAP ", "dim"), (sparkline(b.strip_map, strip_w, 20.0),
+                                                 "green")))
+    lines.append(Text.assemble(("CO  ", "dim"), (sparkline(b.strip_co, strip_w, 1.0),
+                                                 "green")))
     top = b.top_alarm()
     border = "white"
     subtitle = None
@@ -223,13 +234,14 @@ def header(scr: Screen, view: UnitView, now: float) -> Text:
     conn = Text("connected", style="green") if scr.connected else \
         Text("DISCONNECTED", style="bold red reverse")
     t = Text.assemble(("hemostream ", "bold"), (f"unit {scr.unit}", "bold cyan"), "  ", clock,
-                      "  ", f"{scr.source} ", conn,
-                      f"  {len(view.beds)} beds  {scr.rate:.0f} msg/s")
+                      "  ", conn, f"  {len(view.beds)} beds  {scr.rate:.0f} msg/s")
     if scr.lag_s is not None:
         t.append(f"  lag {scr.lag_s:.1f}s")
     if scr.operator:
         t.append(f"  operator {scr.operator}", style="dim")
+    t.append(f"  {scr.source}", style="dim")     # last: it is what gets cut on a narrow screen
     t.no_wrap = True
+    t.overflow = "ellipsis"
     return t
 
 

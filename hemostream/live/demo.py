@@ -230,7 +230,8 @@ async def run_demo(cfg: Config, db_url: str, *, speed: float = 1.0,
     will_topic = status_topic(cfg)
     offline = json.dumps({"v": 1, "kind": "status", "state": "offline",
                           "instance": cfg.instance, "reason": "connection lost"}).encode()
-    out_filters = ["hemo/+/+/derived", "hemo/+/+/alarm", f"hemo/_svc/{cfg.instance}/status"]
+    out_filters = ["hemo/+/+/derived", "hemo/+/+/alarm", "hemo/+/+/note",
+                   f"hemo/_svc/{cfg.instance}/status"]
 
     def show(topic: str, payload: bytes) -> None:
         try:
