@@ -9,9 +9,7 @@ from pathlib import Path
 
 from rich.console import Console
 
-CAUTION = ("hemostream is a secondary display and notification aid, not a medical device. "
-           "The bedside monitor stays the primary alarm source; confirm every value and alarm "
-           "there, and follow local policy and licensed clinical judgement.")
+from . import CAUTION
 
 EXAMPLE_RECORDING = (Path(__file__).resolve().parent.parent / "simulators" / "recordings"
                      / "example-ward.jsonl")
@@ -20,12 +18,8 @@ err = Console(stderr=True, soft_wrap=True)
 
 
 def _load_config(path):
-    from .config import ConfigError, load_config
-    try:
-        return load_config(path)
-    except ConfigError as e:
-        err.print(f"[bold red]invalid configuration[/]\n{e}", highlight=False)
-        raise SystemExit(2)
+    from .config import load_for_command
+    return load_for_command(path)
 
 
 def cmd_replay(args) -> int:

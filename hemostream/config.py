@@ -53,6 +53,31 @@ def parse_config(data: dict, path: str = "<config>") -> Config:
         raise ConfigError(path, config_problems(e)) from None
 
 
+def load_for_command(path: str | Path | None, *, shipped_default: bool = False) -> Config:
+    """A command's configuration: the named file, else the shipped ``configs/default.toml``
+    (``shipped_default``) or the built-in defaults. An invalid file ends the command with
+    every problem listed on stderr and exit status 2."""
+    import sys
+
+    try:
+        if path is None and shipped_default and DEFAULT_CONFIG.is_file():
+            path = DEFAULT_CONFIG
+        return load_config(path)
+    except ConfigError as e:
+        print(f"invalid configuration\n{e}", file=sys.stderr)
+        raise SystemExit(2) from None
+
+
+def with_overrides(cfg: Config, broker: str | None = None, db: str | None = None) -> Config:
+    """``cfg`` with the command line's ``--broker`` and ``--db`` in place of the file's."""
+    upd = {}
+    if broker:
+        upd["broker"] = cfg.broker.model_copy(update={"url": broker})
+    if db:
+        upd["store"] = cfg.store.model_copy(update={"url": db})
+    return cfg.model_copy(update=upd) if upd else cfg
+
+
 def load_config(path: str | Path | None = None) -> Config:
     """Load a TOML configuration; ``None`` gives the built-in defaults."""
     if path is None:

@@ -165,7 +165,7 @@ def run_watch(cfg: Config, unit: str, operator: str | None = None,
 
 def add_parser(sub) -> None:
     """Register ``hemostream watch`` on the CLI's subparsers."""
-    from ..cli import CAUTION
+    from .. import CAUTION
 
     w = sub.add_parser(
         "watch", help="show a unit's live dashboard from the broker (read-only)",
@@ -190,18 +190,11 @@ def add_parser(sub) -> None:
 def _cmd_watch(args) -> int:
     import sys
 
-    from ..config import ConfigError, load_config
+    from ..config import load_for_command, with_overrides
     from ..core.wire import ID_RE
     from ..live.mqtt import BrokerSettingsError
 
-    try:
-        cfg = load_config(args.config)
-    except ConfigError as e:
-        print(f"invalid configuration\n{e}", file=sys.stderr)
-        return 2
-    if args.broker:
-        cfg = cfg.model_copy(update={"broker": cfg.broker.model_copy(
-            update={"url": args.broker})})
+    cfg = with_overrides(load_for_command(args.config), broker=args.broker)
     if not ID_RE.match(args.unit):
         print(f"error: --unit {args.unit!r}: 1-32 characters of A-Z a-z 0-9 - _",
               file=sys.stderr)

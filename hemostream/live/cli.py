@@ -12,32 +12,20 @@ import sys
 from datetime import datetime, timezone
 from pathlib import Path
 
-CAUTION = ("hemostream is a secondary display and notification aid, not a medical device. "
-           "The bedside monitor stays the primary alarm source; confirm every value and alarm "
-           "there, and follow local policy and licensed clinical judgement.")
+from .. import CAUTION
 
 log = logging.getLogger("hemostream.live")
 
 
 def _config(path: str | None):
     """The named configuration, or the shipped default (configs/default.toml)."""
-    from ..config import DEFAULT_CONFIG, ConfigError, load_config
-    try:
-        if path is None:
-            return load_config(DEFAULT_CONFIG if DEFAULT_CONFIG.is_file() else None)
-        return load_config(path)
-    except ConfigError as e:
-        print(f"invalid configuration\n{e}", file=sys.stderr)
-        raise SystemExit(2)
+    from ..config import load_for_command
+    return load_for_command(path, shipped_default=True)
 
 
 def _with_overrides(cfg, broker: str | None = None, db: str | None = None):
-    upd = {}
-    if broker:
-        upd["broker"] = cfg.broker.model_copy(update={"url": broker})
-    if db:
-        upd["store"] = cfg.store.model_copy(update={"url": db})
-    return cfg.model_copy(update=upd) if upd else cfg
+    from ..config import with_overrides
+    return with_overrides(cfg, broker, db)
 
 
 def _logging(level: str) -> None:

@@ -36,9 +36,7 @@ from .transport import TransportError
 
 log = logging.getLogger("hemostream.live.demo")
 
-CAUTION = ("hemostream is a secondary display and notification aid, not a medical device. "
-           "The bedside monitor stays the primary alarm source; confirm every value and alarm "
-           "there.")
+from .. import CAUTION
 EXAMPLE_RECORDING = (Path(__file__).resolve().parent.parent.parent / "simulators"
                      / "recordings" / "example-ward.jsonl")
 

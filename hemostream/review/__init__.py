@@ -13,9 +13,7 @@ notification aid, not a medical device; the bedside monitor stays the primary al
 A comparison describes alarm behaviour on the given recording, not clinical validation.
 """
 
-CAUTION = ("hemostream is a secondary display and notification aid, not a medical device. "
-           "The bedside monitor stays the primary alarm source; confirm every value and alarm "
-           "there, and follow local policy and licensed clinical judgement.")
+from .. import CAUTION  # noqa: F401  (re-exported for the review modules)
 
 COMPARE_CAUTION = ("These figures describe alarm behaviour on the given recording under each "
                    "configuration; they are not a clinical validation of any configuration.")
