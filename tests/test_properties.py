@@ -8,7 +8,7 @@ import json
 from hypothesis import HealthCheck, given, settings, strategies as st
 
 from hemostream.core.processor import Processor
-from hemostream.replay import feed_line, replay_file
+from hemostream.replay import replay_file
 
 PARAMS = ["HR", "ABP_SYS", "ABP_DIA", "CVP", "CO", "SV", "NIBP_SYS", "PAWP", "XX", ""]
 UNITS = ["/min", "mm[Hg]", "kPa", "cm[H2O]", "L/min", "mL", "mmHg", "", "%"]

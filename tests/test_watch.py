@@ -9,8 +9,11 @@ import time
 
 import pytest
 
-from live_fixtures import (UNIT, ServiceThread, broker, iso, live_config,  # noqa: F401
+from hemostream.core.config import UnitConfig
+from live_fixtures import (ServiceThread, broker, iso, live_config,  # noqa: F401
                            mqtt_transport, publish, query, wait_until)
+
+UNIT = "SDU7W"      # a unit of its own: other tests leave retained alarm states on the broker
 
 pytestmark = pytest.mark.broker
 
@@ -36,6 +39,7 @@ def test_watch_shows_the_unit_and_acknowledges(broker, tmp_path):
 
     db = f"sqlite:///{tmp_path / 'w.db'}"
     cfg = live_config(broker.url(), db, "hs-watch")
+    cfg = cfg.model_copy(update={"units": [UnitConfig(id=UNIT, beds=["bed-01", "bed-02"])]})
     svc = ServiceThread(cfg, mqtt_transport(cfg)).start()
     feed = BrokerFeed(cfg, UNIT)
     feed.start()

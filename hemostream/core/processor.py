@@ -17,7 +17,7 @@ from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from typing import Any, Iterable
 
-from pydantic import BaseModel, ValidationError
+from pydantic import ValidationError
 
 from .config import Config
 from .derive import DERIVED_UNITS, Current, derive_all, bsa_dubois, bsa_mosteller

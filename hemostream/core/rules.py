@@ -22,11 +22,10 @@ n) per timer) and never scans all beds.
 from __future__ import annotations
 
 import heapq
-import math
 from typing import Any
 
-from .alarms import PRIORITY_RANK, AlarmBook, CommandError, RuleEvent
-from .rules_artifacts import EMPTY, ArtifactDetector, ArtifactState
+from .alarms import AlarmBook, CommandError, RuleEvent
+from .rules_artifacts import ArtifactDetector, ArtifactState
 from .rules_config import LimitRule, PatternRule, RulesConfig, Term
 from .trends import RobustTrend, TrendReading
 
