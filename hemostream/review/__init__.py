@@ -13,7 +13,9 @@ notification aid, not a medical device; the bedside monitor stays the primary al
 A comparison describes alarm behaviour on the given recording, not clinical validation.
 """
 
-from .. import CAUTION as CAUTION  # re-exported for the review modules
+from .. import CAUTION
 
 COMPARE_CAUTION = ("These figures describe alarm behaviour on the given recording under each "
                    "configuration; they are not a clinical validation of any configuration.")
+
+__all__ = ["CAUTION", "COMPARE_CAUTION"]
