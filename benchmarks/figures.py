@@ -50,11 +50,11 @@ class Sizes:
     broker_rounds: int = 30
     publishers: int = 1
     #: Mosquitto's max_inflight_messages (None: its default, 20)
-    broker_max_inflight: int | None = 1000
+    broker_max_inflight: int | None = None
     # 3. latency
     latency_beds: int = 2000
     latency_rate: float = 2000.0
-    latency_seconds: float = 60.0
+    latency_seconds: float = 45.0
     latency_alarm_every: int = 10
     latency_cycle_s: float = 30.0
     latency_high_s: float = 15.0
@@ -69,10 +69,12 @@ class Sizes:
     scale_fill_every: int = 4
     #: measured phase: at least this many seconds and this many messages (the replay reports
     #: progress every 2,000 lines, which is the timing resolution)
-    scale_measure_s: int = 60
+    scale_measure_s: int = 30
     scale_measure_messages: int = 30000
     #: the bed count whose peak RSS is held to the limit
     rss_beds: int = 2000
+    #: the bed count run a second time with the fill phase's rows stored (0: not run)
+    db_growth_beds: int = 500
 
 
 FULL = Sizes("full")
@@ -81,7 +83,7 @@ QUICK = Sizes("quick", replay_beds=200, replay_seconds=60, repeats=1,
               latency_seconds=22.0, latency_spread_s=8.0,
               scale_beds=(25, 50, 100, 200), scale_window_s=600, scale_short_window_s=300,
               scale_fill_every=5, scale_measure_s=20, scale_measure_messages=4000,
-              rss_beds=0)
+              rss_beds=0, db_growth_beds=100)
 SMOKE = Sizes("smoke", replay_beds=20, replay_seconds=20, repeats=1,
               broker_beds=20, broker_rounds=20,
               latency_beds=50, latency_rate=100.0, latency_seconds=6.0,
@@ -89,7 +91,7 @@ SMOKE = Sizes("smoke", replay_beds=20, replay_seconds=20, repeats=1,
               latency_spread_s=1.0, latency_hr_delay_s=1.0,
               scale_beds=(10, 20), scale_window_s=360, scale_short_window_s=180,
               scale_fill_every=6, scale_measure_s=10, scale_measure_messages=4000,
-              rss_beds=0)
+              rss_beds=0, db_growth_beds=10)
 SIZES = {s.name: s for s in (FULL, QUICK, SMOKE)}
 
 TARGETS = {
@@ -466,15 +468,20 @@ def fig_latency(work: Path, sz: Sizes, log: Log) -> dict:
 # --------------------------------------------------------------------------- 4. scale
 
 def _scale_run(work: Path, beds: int, window_s: int, sz: Sizes, rec: Path,
-               first: int) -> dict:
+               first: int, log: Log, store_fill: bool = False) -> dict:
     db = work / f"scale-{beds}-{window_s}.db"
     remove_db(db)
     cfg = write_config(work / f"scale-{window_s}.toml", db, window_s=window_s)
     m = run_measured([PY, "-m", "benchmarks.scale_replay", str(rec), "--config", str(cfg),
-                      "--db", sqlite_url(db), "--measured-from", str(first)]).check()
+                      "--db", sqlite_url(db), "--measured-from", str(first)]
+                     + (["--store-fill"] if store_fill else [])).check()
     remove_db(db)
     r = json.loads(m.stdout.strip().splitlines()[-1])
-    return {"beds": beds, "window_s": window_s, "lines": r["lines"],
+    log(f"scale: {beds} beds, {window_s} s windows{', fill stored' if store_fill else ''}: "
+        f"{r['us_per_message']:.1f} us/message (main thread {r['main_cpu_us_per_message']:.1f}"
+        f", writer {r['writer_cpu_us_per_message']:.1f} CPU), peak RSS "
+        f"{m.max_rss_kb / 1024:.0f} MB, {m.seconds:.0f} s")
+    return {"beds": beds, "window_s": window_s, "store_fill": store_fill, "lines": r["lines"],
             "measured_lines": r["measured_lines"],
             "us_per_message": r["us_per_message"],
             "fill_us_per_message": r["fill_us_per_message"],
@@ -492,7 +499,7 @@ def _scale_run(work: Path, beds: int, window_s: int, sz: Sizes, rec: Path,
 
 def fig_scale(work: Path, sz: Sizes, log: Log) -> dict:
     runs = []
-    short = None
+    short = grown = None
     for beds in sz.scale_beds:
         measure_s = max(sz.scale_measure_s, -(-sz.scale_measure_messages // beds))
         rec = work / f"scale-{beds}.jsonl"
@@ -501,10 +508,12 @@ def fig_scale(work: Path, sz: Sizes, log: Log) -> dict:
         log(f"scale: {beds} beds, {lines} lines ({sz.scale_window_s} s fill, one message "
             f"per bed every {sz.scale_fill_every} s, then {measure_s} s at 1 Hz); "
             f"load {load_average()}")
-        runs.append(_scale_run(work, beds, sz.scale_window_s, sz, rec, first))
+        runs.append(_scale_run(work, beds, sz.scale_window_s, sz, rec, first, log))
         if beds == sz.scale_beds[0]:
-            log(f"scale: {beds} beds again with {sz.scale_short_window_s} s trend windows")
-            short = _scale_run(work, beds, sz.scale_short_window_s, sz, rec, first)
+            short = _scale_run(work, beds, sz.scale_short_window_s, sz, rec, first, log)
+        if beds == sz.db_growth_beds:
+            grown = _scale_run(work, beds, sz.scale_window_s, sz, rec, first, log,
+                               store_fill=True)
         rec.unlink()
     small, big = runs[0], runs[-1]
     growth = big["us_per_message"] / small["us_per_message"]
@@ -533,11 +542,25 @@ def fig_scale(work: Path, sz: Sizes, log: Log) -> dict:
                      "target_text": "< 500 MB", "pass": _pass(rss_run["peak_rss_mb"]
                                                               < TARGETS["rss_mb"])})
     else:
+        rss_run = big
         rows.append({"title": f"4c. peak RSS at {big['beds']} beds "
                               f"({sz.scale_window_s // 60}-min windows)",
                      "unit": "MB", "measured": big["peak_rss_mb"], "baseline": None,
                      "ratio": None, "target": None,
                      "target_text": "< 500 MB at 2,000 beds (full run only)", "pass": None})
+    rows.append({"title": f"4d. RSS after the fill, {rss_run['beds']} beds (state, "
+                          "rows all written)", "unit": "MB",
+                 "measured": rss_run["rss_at_measure_start_mb"],
+                 "baseline": rss_run["peak_rss_mb"],
+                 "ratio": rss_run["rss_at_measure_start_mb"] / rss_run["peak_rss_mb"],
+                 "target": None, "target_text": "(information)", "pass": None})
+    if grown is not None:
+        same = next(r for r in runs if r["beds"] == grown["beds"])
+        rows.append({"title": f"4e. cost/message, database holding the fill's rows vs "
+                              f"empty ({grown['beds']} beds)", "unit": "us",
+                     "measured": grown["us_per_message"], "baseline": same["us_per_message"],
+                     "ratio": grown["us_per_message"] / same["us_per_message"],
+                     "target": None, "target_text": "(information)", "pass": None})
     return {
         "title": "4. scale", "unit": "us/message",
         "measured": big["us_per_message"], "baseline": small["us_per_message"],
@@ -546,10 +569,11 @@ def fig_scale(work: Path, sz: Sizes, log: Log) -> dict:
         "rows": rows,
         "details": {
             "protocol": f"fill {sz.scale_window_s} s (one message per bed every "
-                        f"{sz.scale_fill_every} s: full trend windows and duplicate memory), "
-                        "then a measured phase at 1 Hz per bed; whole pipeline as in "
-                        "hemostream replay; peak RSS of the replaying process",
-            "runs": runs, "short_window_run": short,
+                        f"{sz.scale_fill_every} s: full trend windows and duplicate memory; "
+                        "its rows not written), then a measured phase at 1 Hz per bed into "
+                        "a database holding only the beds; whole pipeline as in hemostream "
+                        "replay; peak RSS of the replaying process",
+            "runs": runs, "short_window_run": short, "stored_fill_run": grown,
             "rss_per_1000_beds_mb": per_bed_kb * 1000 / 1024 if per_bed_kb else None,
         },
     }

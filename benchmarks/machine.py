@@ -68,6 +68,20 @@ def mosquitto_version() -> str | None:
     return first[0].replace("mosquitto version", "").strip() if first else None
 
 
+def source_version() -> dict:
+    """The commit measured, and whether hemostream/ differed from it (work in progress)."""
+    def git(*args: str) -> str:
+        try:
+            r = subprocess.run(["git", *args], cwd=ROOT, capture_output=True, text=True,
+                               timeout=10)
+            return r.stdout.strip() if r.returncode == 0 else ""
+        except (OSError, subprocess.TimeoutExpired):
+            return ""
+    changed = git("status", "--porcelain", "--", "hemostream")
+    return {"commit": git("rev-parse", "--short", "HEAD") or None,
+            "hemostream_modified": bool(changed)}
+
+
 def child_env() -> dict:
     env = dict(os.environ)
     env.pop("HEMOSTREAM_MQTT_PASSWORD", None)

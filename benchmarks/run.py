@@ -24,8 +24,10 @@ from pathlib import Path
 from rich.console import Console
 from rich.table import Table
 
+import dataclasses
+
 from .figures import SIZES, fig_broker, fig_latency, fig_replay, fig_scale
-from .machine import ROOT, load_average, machine
+from .machine import ROOT, load_average, machine, source_version
 
 FIGURES = {"replay": fig_replay, "broker": fig_broker, "latency": fig_latency,
            "scale": fig_scale}
@@ -96,10 +98,20 @@ def main(argv: list[str] | None = None) -> int:
                     help=f"JSON results (default {DEFAULT_OUT.relative_to(ROOT)} for a full "
                     "run; quick and smoke runs write only when asked)")
     ap.add_argument("--only", default="", help="comma-separated: replay,broker,latency,scale")
+    ap.add_argument("--scale-beds", default="",
+                    help="comma-separated bed counts for the scale figure (default: 100,500,"
+                    "2000,5000 in a full run)")
+    ap.add_argument("--repeats", type=int, default=0,
+                    help="runs of figures 1 and 2, best taken (default: 2 full, 1 quick)")
     ap.add_argument("--keep", action="store_true", help="keep the working directory")
     ap.add_argument("--workdir", type=Path, default=None)
     a = ap.parse_args(argv)
     sz = SIZES["smoke" if a.smoke else "quick" if a.quick else "full"]
+    if a.scale_beds:
+        beds = tuple(int(x) for x in a.scale_beds.split(",") if x.strip())
+        sz = dataclasses.replace(sz, scale_beds=beds)
+    if a.repeats:
+        sz = dataclasses.replace(sz, repeats=a.repeats)
     only = [x.strip() for x in a.only.split(",") if x.strip()] or list(FIGURES)
     unknown = [x for x in only if x not in FIGURES]
     if unknown:
@@ -114,7 +126,9 @@ def main(argv: list[str] | None = None) -> int:
 
     result = {"version": 1, "size": sz.name,
               "started": datetime.now(timezone.utc).isoformat(timespec="seconds"),
-              "machine": machine(), "load_average": {"start": load_average()},
+              "machine": machine(), "source": source_version(),
+              "sizes": dataclasses.asdict(sz),
+              "load_average": {"start": load_average()},
               "figures": {}}
     log(f"{sz.name} run on {result['machine']['cpu']} x {result['machine']['cores']}, "
         f"load average {result['load_average']['start']}; working in {work}")
@@ -134,6 +148,9 @@ def main(argv: list[str] | None = None) -> int:
             f["load_average_after"] = load_average()
             result["figures"][key] = f
             log(f"{key}: done in {f['seconds']} s, load average {f['load_average_after']}")
+            if out_path is not None:           # a run stopped half-way keeps what it has
+                out_path.parent.mkdir(parents=True, exist_ok=True)
+                out_path.write_text(json.dumps(result, indent=2) + "\n")
     finally:
         if not a.keep:
             shutil.rmtree(work, ignore_errors=True)

@@ -12,6 +12,12 @@ queue is waited for, so the measured phase pays for its own rows only, not for a
 the fill phase's. (The processor and writer replay_file creates are reached by wrapping the
 two classes in its module; nothing in hemostream changes.)
 
+By default the fill phase's rows are not written (only the ``beds`` rows, which later rows
+refer to): the measured phase then writes into a database that holds nothing else, the same
+for every bed count, so its cost reflects the pipeline's in-memory state (bed count, window
+length) and not the size of the database. ``--store-fill`` writes them too (a database
+holding the fill phase's rows: the cost of inserting into a grown database).
+
 Prints one JSON line: per-message cost of the measured phase, the fill phase's time, the
 replay summary, this process's peak resident set size, its resident set size when the
 measured phase began (the fill phase's rows all written: the pipeline's state, plus whatever
@@ -46,6 +52,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--config", required=True)
     ap.add_argument("--db", required=True)
     ap.add_argument("--measured-from", type=int, required=True)
+    ap.add_argument("--store-fill", action="store_true",
+                    help="write the fill phase's rows too (default: only its beds rows)")
     a = ap.parse_args(argv)
 
     import hemostream.replay as rp
@@ -55,7 +63,7 @@ def main(argv: list[str] | None = None) -> int:
 
     made: dict[str, object] = {}
     writer_cpu = [0.0, 0.0]                  # [cpu s, wall s] of write_rows while measuring
-    measuring = [False]
+    measuring = [False]                      # set at the start of the measured phase
     write_rows = store.write_rows
 
     def timed_write_rows(*args, **kw):
@@ -78,6 +86,13 @@ def main(argv: list[str] | None = None) -> int:
         def __init__(self, *args, **kw) -> None:
             super().__init__(*args, **kw)
             made["writer"] = self
+
+        def submit(self, rows, on_done=None) -> None:
+            if not measuring[0] and not a.store_fill:
+                rows = {k: v for k, v in rows.items() if k == "beds"}
+                if not rows:
+                    return
+            super().submit(rows, on_done)
 
     rp.Processor, rp.Writer = Processor, Writer
     cfg = load_config(a.config)

@@ -49,7 +49,7 @@ def test_the_four_figures_and_the_machine(results):
     assert m["cpu"] and m["cores"] >= 1 and m["python"] and m["platform"]
     assert results["load_average"]["start"]
     # the printed table: one row per figure, the scale figure's three
-    assert [r["figure"][:2] for r in results["table"]] == ["1.", "2.", "3.", "4a", "4b", "4c"]
+    assert [r["figure"][:2] for r in results["table"]] == ["1.", "2.", "3.", "4a", "4b", "4c", "4d", "4e"]
     assert "| figure |" in results["markdown"]
 
 
@@ -90,7 +90,7 @@ def test_scale_figure_is_sane(results):
     f = results["figures"]["scale"]
     runs = f["details"]["runs"]
     assert [r["beds"] for r in runs] == [10, 20]
-    for r in runs + [f["details"]["short_window_run"]]:
+    for r in runs + [f["details"]["short_window_run"], f["details"]["stored_fill_run"]]:
         assert _positive(r["us_per_message"]) and _positive(r["peak_rss_mb"])
         assert r["rejected"] == 0 and r["measured_lines"] >= 2000
     for row in f["rows"][:2]:
