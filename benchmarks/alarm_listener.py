@@ -9,8 +9,8 @@ prints one JSON line with the events: bed, rule, transition, event time (as publ
 arrival time. The receive time is taken in paho's network thread, before any decoding.
 
 ``--obs`` also subscribes to the input topic ``hemo/+/+/obs`` and reports, for every
-observation message, its publish-to-delivery time (arrival minus the ``time`` field the
-publisher stamped): the same stream's transport latency, the latency figure's baseline.
+observation message, its publish time (the ``time`` field the publisher stamped) and its
+publish-to-delivery time: the same stream's transport latency, the latency figure's baseline.
 """
 
 from __future__ import annotations
@@ -82,14 +82,15 @@ def main(argv: list[str] | None = None) -> int:
                        "transition": ev.get("transition"), "time": ev.get("time"),
                        "recv": t})
     stamp = re.compile(rb'"time":"([^"]+)"')
-    obs_ms = []
+    obs_sent, obs_ms = [], []
     for t, p in obs:
         m = stamp.search(p)
         if m:
             sent = datetime.fromisoformat(m.group(1).decode().replace("Z", "+00:00"))
+            obs_sent.append(round(sent.timestamp(), 4))
             obs_ms.append(round((t - sent.timestamp()) * 1000, 3))
-    print(json.dumps({"events": events, "state_messages": states, "obs_latency_ms": obs_ms}),
-          flush=True)
+    print(json.dumps({"events": events, "state_messages": states, "obs_sent": obs_sent,
+                      "obs_latency_ms": obs_ms}), flush=True)
     return 0
 
 

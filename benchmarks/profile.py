@@ -8,8 +8,10 @@ py-spy (``pip install py-spy``; a sampling profiler in its own process, so the p
 program runs unmodified and every thread is seen) records ``--rate`` samples per second of
 every thread's stack. The summary gives each thread's share of the samples, then functions
 by inclusive share (in the stack at all) and by own share (the innermost frame), and the
-same by source file. Percentages are of all samples of busy threads (py-spy leaves idle
-threads out unless ``--idle`` is given). Summaries go to ``benchmarks/profiles/``.
+same by source file, and a split by area of the pipeline (writer thread, rules layer,
+derived values, validation, core, MQTT client ...). Percentages are of all samples of busy
+threads (py-spy leaves idle threads out unless ``--idle`` is given). Summaries (and the raw
+samples, not committed) go to ``benchmarks/profiles/``.
 """
 
 from __future__ import annotations
@@ -59,9 +61,35 @@ def _frame(text: str) -> tuple[str, str]:
     return f"{m.group('fn')} ({f})", f
 
 
+#: areas of the pipeline, first match wins (thread name, or a file/function in the stack)
+AREAS = [
+    ("storage: writer thread (SQLite inserts, commits)",
+     lambda th, fr: th == "hemostream-writer"),
+    ("start-up: imports", lambda th, fr: any("importlib" in f for _, f in fr)),
+    ("rules layer (limits, trends, patterns, artifacts, alarms)",
+     lambda th, fr: any(re.search(r"hemostream/core/(rules|trends|alarms)", f) for _, f in fr)),
+    ("derived values (derive_all, freshness, cadence, publish body)",
+     lambda th, fr: any(fn.startswith(("derive_all", "Processor._derive")) for fn, _ in fr)),
+    ("parse and validate (json, pydantic)",
+     lambda th, fr: any(f.startswith("pydantic") or "model_validate" in fn or
+                        f.startswith("json/decoder") for fn, f in fr)),
+    ("core ingest (topic, duplicates, units, plausibility, rows)",
+     lambda th, fr: any(f.startswith("hemostream/core/") for _, f in fr)),
+    ("MQTT client (paho, aiomqtt: receive, acknowledge, publish)",
+     lambda th, fr: any(f.startswith(("paho/", "aiomqtt/")) for _, f in fr)),
+    ("encoding published outputs (json)",
+     lambda th, fr: any(f.startswith("json/encoder") for _, f in fr)),
+    ("live service and replay loop (hemostream/live, replay.py)",
+     lambda th, fr: any(f.startswith(("hemostream/live/", "hemostream/replay"))
+                        for _, f in fr)),
+    ("other (event loop, executor threads, interpreter)", lambda th, fr: True),
+]
+
+
 def summarize(raw: Path, top: int = 25) -> str:
     """A text summary of a py-spy ``--format raw --threads`` file."""
     threads: Counter = Counter()
+    areas: Counter = Counter()
     inclusive: Counter = Counter()
     own: Counter = Counter()
     files_incl: Counter = Counter()
@@ -86,6 +114,8 @@ def summarize(raw: Path, top: int = 25) -> str:
             files_incl[f] += n
         own[frames[-1][0]] += n
         files_own[frames[-1][1]] += n
+        th = name.strip()
+        areas[next(a for a, match in AREAS if match(th, frames))] += n
     if total == 0:
         return "no samples\n"
 
@@ -94,6 +124,9 @@ def summarize(raw: Path, top: int = 25) -> str:
 
     out = [f"samples: {total}", "", "threads (share of samples):"]
     out += [f"  {pct(c)}  {t}" for t, c in threads.most_common()]
+    out += ["", "by area (first that applies: writer thread, imports, rules, derived values, "
+            "validation, core, MQTT, encoding, glue):"]
+    out += [f"  {pct(c)}  {a}" for a, c in areas.most_common()]
     out += ["", f"top {top} functions, inclusive (in the stack):"]
     out += [f"  {pct(c)}  {f}" for f, c in inclusive.most_common(top)]
     out += ["", f"top {top} functions, own time (innermost frame):"]
@@ -164,7 +197,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("raw", nargs="?", help="summarize: the py-spy raw file")
     ap.add_argument("--quick", action="store_true")
     ap.add_argument("--rate", type=int, default=200, help="samples per second")
-    ap.add_argument("--top", type=int, default=25)
+    ap.add_argument("--top", type=int, default=30)
     ap.add_argument("--out-dir", type=Path, default=OUT_DIR)
     a = ap.parse_args(argv)
     if a.what == "summarize":
@@ -179,6 +212,7 @@ def main(argv: list[str] | None = None) -> int:
                 f" size), {time.strftime('%Y-%m-%d %H:%M')}, load average "
                 f"{load_average()}\n\n" + summarize(raw, a.top))
         a.out_dir.mkdir(parents=True, exist_ok=True)
+        shutil.copy(raw, a.out_dir / f"{a.what}.raw")      # for summarize, or a flame graph
         dest = a.out_dir / f"{a.what}.txt"
         dest.write_text(text)
         print(text, end="")
