@@ -398,6 +398,52 @@ def fig_broker(work: Path, sz: Sizes, log: Log) -> dict:
 
 # --------------------------------------------------------------------------- 3. latency
 
+def _alarm_latencies(events: list[dict], pres: list[dict], delay: float,
+                     t_last: float) -> tuple[list[float], list[float], int]:
+    """Publish-to-alarm times (ms) of the ``HR_high`` raised events.
+
+    For each event: the high run it belongs to starts at the bed's first high-HR message
+    (its publish time is the onset); the condition is due ``delay`` seconds later, and the
+    message that completes the delay is the bed's first one published at or after that
+    moment (1 ms tolerance: the times travel as text). Latency = arrival of the event at
+    the listener - publish time of that message (or the due time if the event came before
+    it). Also returns, for events raised later than that message (at the service's next
+    tick or the next sample), how much later, and how many were raised by it directly.
+    """
+    stamps: dict[str, list[tuple[float, bool]]] = {}
+    for r in pres:
+        for bed, ts in (r.get("stamps") or {}).items():
+            stamps.setdefault(bed, []).extend((float(t), bool(h)) for t, h in ts)
+    onsets: dict[str, list[float]] = {}
+    for bed, ts in stamps.items():
+        ts.sort()
+        prev = False
+        for t, high in ts:
+            if high and not prev:
+                onsets.setdefault(bed, []).append(t)
+            prev = high
+    lat, extra, direct = [], [], 0
+    for e in events:
+        if e.get("rule") != "HR_high" or e.get("transition") != "raised" or not e.get("time"):
+            continue
+        t_ev = parse_time(e["time"])
+        if t_ev > t_last:
+            continue
+        bed = str(e.get("bed", "")).rpartition("/")[2]
+        ons = [t for t in onsets.get(bed, ()) if t <= t_ev + 0.0011]
+        if not ons:
+            continue
+        due = ons[-1] + delay
+        done = next((t for t, _ in stamps[bed] if t >= due - 0.001), None)
+        ref = due if done is None or done > e["recv"] else done
+        lat.append((e["recv"] - ref) * 1000)
+        if done is not None and abs(t_ev - done) < 0.0011:
+            direct += 1
+        elif done is not None:
+            extra.append((t_ev - done) * 1000)
+    return lat, extra, direct
+
+
 def fig_latency(work: Path, sz: Sizes, log: Log) -> dict:
     beds, rate, secs = sz.latency_beds, sz.latency_rate, sz.latency_seconds
     n_obs = int(rate * secs)
@@ -434,12 +480,12 @@ def fig_latency(work: Path, sz: Sizes, log: Log) -> dict:
             raise
         loss = loss_check(db, n_obs)
         remove_db(db)
-    evs = [e for e in lres["events"] if e.get("rule") == "HR_high" and e.get("time")
-           and parse_time(e["time"]) <= t_last]
-    lat = [(e["recv"] - parse_time(e["time"])) * 1000 for e in evs]
+    delay = sz.latency_hr_delay_s or 10.0
+    lat, extra, by_sample = _alarm_latencies(lres["events"], pres, delay, t_last)
+    evs = [e for e in lres["events"] if e.get("rule") == "HR_high"]
     # the baseline over the same stretch of the stream as the alarm events
-    t0 = min((parse_time(e["time"]) for e in evs), default=0.0) - 1.0
-    t1 = max((parse_time(e["time"]) for e in evs), default=0.0)
+    ev_t = [parse_time(e["time"]) for e in evs if e.get("time")]
+    t0, t1 = (min(ev_t) - 1.0, max(ev_t)) if ev_t else (0.0, 0.0)
     transport = [ms for sent, ms in zip(lres.get("obs_sent") or [],
                                         lres.get("obs_latency_ms") or []) if t0 <= sent <= t1]
     p50 = percentile(lat, 50) if lat else None
@@ -458,7 +504,10 @@ def fig_latency(work: Path, sz: Sizes, log: Log) -> dict:
                       f"150-154 /min for {sz.latency_high_s:g} s of every "
                       f"{sz.latency_cycle_s:g} s",
             "hr_condition_delay_s": sz.latency_hr_delay_s or 10.0,
-            "alarm_events": len(lat),
+            "raised_events": len(lat), "hr_events_all_transitions": len(evs),
+            "raised_at_the_completing_sample": by_sample,
+            "raised_later": len(lat) - by_sample,
+            "raised_later_median_wait_ms": (percentile(extra, 50) if extra else None),
             "transitions": sorted({e["transition"] for e in evs}),
             "p50_ms": p50, "p90_ms": percentile(lat, 90) if lat else None,
             "p99_ms": p99, "max_ms": max(lat) if lat else None,

@@ -24,7 +24,8 @@ HR limit of 140) for ``--high-s`` seconds of every ``--cycle-s``, starting at a 
 spread over ``--spread-s``, so limit alarms are raised and ended throughout the run.
 
 Prints one JSON line: published, acknowledged (PUBACKs), start, last publish and last PUBACK
-wall-clock times.
+wall-clock times, and in paced mode the publish time of every message of the alarm beds with
+whether its heart rate was the high one.
 """
 
 from __future__ import annotations
@@ -94,13 +95,15 @@ class Ward:
                 .encode())
 
     def obs(self, i: int, seq: int, t: str, elapsed: float) -> bytes:
+        return self.obs_flag(i, seq, t, elapsed)[0]
+
+    def obs_flag(self, i: int, seq: int, t: str, elapsed: float) -> tuple[bytes, bool]:
+        """The payload, and whether its heart rate is the high one."""
         ph = self.phase[i]
         k = (i + seq) % VARIANTS
-        if ph is not None and elapsed >= ph and (elapsed - ph) % self.cycle_s < self.high_s:
-            arr = self.high[k]
-        else:
-            arr = self.normal[k]
-        return f'{self.heads[i]}{seq},"time":"{t}","obs":{arr}}}'.encode()
+        high = ph is not None and elapsed >= ph and (elapsed - ph) % self.cycle_s < self.high_s
+        arr = self.high[k] if high else self.normal[k]
+        return f'{self.heads[i]}{seq},"time":"{t}","obs":{arr}}}'.encode(), high
 
 
 class Client:
@@ -171,6 +174,8 @@ def main(argv: list[str] | None = None) -> int:
     cl = Client(a.url, f"bench-pub-{a.unit.lower()}-{k}of{n}-{int(time.time() * 1000) % 100000}",
                 a.window)
     sent = 0
+    #: paced mode: (publish time, high heart rate?) of every message of the alarm beds
+    stamps: dict[str, list[tuple[float, bool]]] = {}
     now = time.time()
     t_admit = iso_ms(now)
     for i in range(len(beds)):
@@ -208,7 +213,10 @@ def main(argv: list[str] | None = None) -> int:
             while m < limit:
                 i = m % nb
                 t = time.time()
-                pub(topics[i], ward.obs(i, m // nb, iso_us(t), t - t_start))
+                body, high = ward.obs_flag(i, m // nb, iso_us(t), t - t_start)
+                pub(topics[i], body)
+                if ward.phase[i] is not None:
+                    stamps.setdefault(bed_name(beds[i]), []).append((round(t, 6), high))
                 m += 1
         sent += total
     t_last = time.time()
@@ -218,7 +226,8 @@ def main(argv: list[str] | None = None) -> int:
     cl.close()
     print(json.dumps({"published": sent, "admits": nb, "acknowledged": acked, "complete": ok,
                       "beds": nb, "alarm_beds": ward.alarm_beds(), "t_start": t_start,
-                      "t_last_publish": t_last, "t_last_ack": last_ack}), flush=True)
+                      "t_last_publish": t_last, "t_last_ack": last_ack, "stamps": stamps}),
+          flush=True)
     return 0 if ok else 1
 
 
