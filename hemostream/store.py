@@ -23,7 +23,7 @@ from sqlalchemy import (BigInteger, Boolean, Float, ForeignKey, Index, Integer, 
 from sqlalchemy.engine import Engine
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
 
-from .core.processor import OBSERVATION_COLUMNS
+from .core.processor import OBSERVATION_COLUMNS, obs_identity
 
 log = logging.getLogger(__name__)
 
@@ -239,7 +239,7 @@ def load_resume(engine: Engine, recent: int = 200_000) -> Resume:
         rows = conn.execute(
             select(m.c.kind, m.c.topic, m.c.device, m.c.seq, m.c.time, m.c.digest)
             .where(m.c.id > max_id - recent).order_by(m.c.id)).all()
-    known = [(r.device, (r.seq, r.time)) if r.kind == "obs"
+    known = [(r.device, obs_identity(r.seq, r.time)) if r.kind == "obs"
              else (r.topic, (r.kind, r.time, r.digest)) for r in rows]
     return Resume(next_ids={"messages": max_id + 1,
                             "beds": max((b[0] for b in beds), default=0) + 1},

@@ -60,7 +60,7 @@ class IngestConfig(BaseModel):
     #: not fed to derivations; within it they are handled in measurement order
     late_after_s: Annotated[float, Field(ge=0)] = 30.0
     #: per device, how many recent message identities are remembered to drop duplicates
-    dedup_per_device: Annotated[int, Field(ge=16)] = 128
+    dedup_per_device: Annotated[int, Field(ge=16)] = 512
     plausible: dict[str, Bounds] = Field(
         default_factory=lambda: {p: Bounds(low=lo, high=hi)
                                  for p, (lo, hi) in DEFAULT_PLAUSIBLE.items()})

@@ -168,6 +168,17 @@ class _Bed:
         self.stored.clear()
 
 
+def obs_identity(seq: int, t: float) -> int:
+    """(seq, time) of an obs message as one exact integer: seq above, the time in whole
+    microseconds below (2^52 us reach past the year 2100). An int takes about a third of the
+    memory of a (seq, time) tuple, and thousands of devices x hundreds of identities add up.
+
+    >>> obs_identity(1, 0.000001) == (1 << 52) + 1
+    True
+    """
+    return (seq << 52) + round(t * 1e6)
+
+
 class _Dedup:
     """Recent message identities per device, bounded (at-least-once redeliveries are recent)."""
 
@@ -368,7 +379,7 @@ class Processor:
 
     def _obs(self, bed: _Bed, topic: str, msg: ObsMessage, t: float, rx: float,
              payload: bytes | str | dict) -> None:
-        if self.dedup.check_and_add(msg.device, (msg.seq, t)):
+        if self.dedup.check_and_add(msg.device, obs_identity(msg.seq, t)):
             self.counters.duplicates += 1
             self.out.duplicates += 1
             return
