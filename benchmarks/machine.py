@@ -77,9 +77,14 @@ def source_version() -> dict:
             return r.stdout.strip() if r.returncode == 0 else ""
         except (OSError, subprocess.TimeoutExpired):
             return ""
+    import hashlib
     changed = git("status", "--porcelain", "--", "hemostream")
-    return {"commit": git("rev-parse", "--short", "HEAD") or None,
-            "hemostream_modified": bool(changed)}
+    head = git("rev-parse", "HEAD")
+    diff = git("diff", "HEAD", "--", "hemostream") if changed else ""
+    tree = git("rev-parse", "HEAD:hemostream")
+    return {"commit": head[:7] or None, "hemostream_modified": bool(changed),
+            #: identifies the code measured: hemostream/'s tree and any uncommitted change
+            "code": hashlib.sha1((tree + diff).encode()).hexdigest()[:12]}
 
 
 def child_env() -> dict:

@@ -144,6 +144,7 @@ def main(argv: list[str] | None = None) -> int:
                 f = {"error": f"{e.__class__.__name__}: {e}"}
                 code = 1
             f["seconds"] = round(time.monotonic() - t, 1)
+            f["source_after"] = source_version()
             f["load_average_before"] = la
             f["load_average_after"] = load_average()
             result["figures"][key] = f
@@ -155,12 +156,22 @@ def main(argv: list[str] | None = None) -> int:
         if not a.keep:
             shutil.rmtree(work, ignore_errors=True)
     result["load_average"]["end"] = load_average()
+    codes = {result["source"]["code"]} | {f["source_after"]["code"]
+                                          for f in result["figures"].values()}
+    #: False when hemostream's code changed while the run went on (a shared working tree):
+    #: the figures then do not all describe the same code
+    result["same_code_throughout"] = len(codes) == 1
+    if not result["same_code_throughout"]:
+        err.print("[bold red]warning:[/] hemostream/ changed during the run; the figures "
+                  "describe different code (see source and source_after in the JSON)")
     result["seconds"] = round(time.monotonic() - t0, 1)
     rows = rows_of(result["figures"])
     result["table"] = rows
     result["markdown"] = markdown(rows)
     m = result["machine"]
-    title = (f"hemostream benchmarks ({sz.name}) - {m['cpu']}, {m['cores']} cores, Python "
+    title = (("[bold red]CODE CHANGED DURING THE RUN[/] " if not result["same_code_throughout"]
+              else "")
+             + f"hemostream benchmarks ({sz.name}) - {m['cpu']}, {m['cores']} cores, Python "
              f"{m['python']}, load average {result['load_average']['start']} -> "
              f"{result['load_average']['end']}")
     Console(soft_wrap=True).print(table(rows, title))
