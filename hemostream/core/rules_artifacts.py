@@ -58,6 +58,18 @@ class ArtifactState:
         self.ref: dict[str, list[float]] = {}     # channel -> [time, pulse pressure, mean]
 
 
+def _hold(st: "ArtifactState", ch: str, t: float, until: float) -> None:
+    """A detected signature on channel ``ch``: values are held out until ``until``, and the
+    signature counts towards a suspected-artifact alarm unless a note explains it."""
+    if until > st.any_until:
+        st.any_until = until
+    st.cache_t = float("nan")
+    if st.note_until.get(ch, _NINF) >= t or ch in st.ignored:
+        st.sig_since.pop(ch, None)
+    elif ch not in st.sig_since:
+        st.sig_since[ch] = t
+
+
 class ArtifactDetector:
     def __init__(self, cfg: ArtifactConfig) -> None:
         self.cfg = cfg
@@ -167,25 +179,13 @@ class ArtifactDetector:
                     # damped: systolic-dependent values out, the mean stays in use
                     until = t + cfg.post_hold_s
                     st.damp_until[ch] = until
-                    if until > st.any_until:
-                        st.any_until = until
-                    st.cache_t = float("nan")
-                    if st.note_until.get(ch, _NINF) >= t or ch in st.ignored:
-                        st.sig_since.pop(ch, None)
-                    elif ch not in st.sig_since:
-                        st.sig_since[ch] = t
+                    _hold(st, ch, t, until)
                     continue
                 if hit:
                     until = t + cfg.post_hold_s
                     if st.auto_until.get(ch, _NINF) < until:
                         st.auto_until[ch] = until
-                    if until > st.any_until:
-                        st.any_until = until
-                    st.cache_t = float("nan")
-                    if st.note_until.get(ch, _NINF) >= t or ch in st.ignored:
-                        st.sig_since.pop(ch, None)
-                    elif ch not in st.sig_since:
-                        st.sig_since[ch] = t
+                    _hold(st, ch, t, until)
                 else:
                     if st.sig_since:
                         st.sig_since.pop(ch, None)
