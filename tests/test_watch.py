@@ -55,11 +55,17 @@ def test_watch_shows_the_unit_and_acknowledges(broker, tmp_path):
                                  broker.url(), "--unit", UNIT, "--once", "4", "--size",
                                  "120x30"], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
                                 text=True)
-        time.sleep(2)                       # the stream goes on while it watches
-        more = tachycardia_lines(5)
-        for line in more:
-            line["payload"]["seq"] += 1000
-        publish(more, broker.url(), None)
+        # the stream goes on while it watches: keep publishing until the watcher has drawn its
+        # last frame, so a slow start (imports, connect) cannot miss the live beds
+        seq = 1000
+        deadline = time.monotonic() + 60
+        while proc.poll() is None and time.monotonic() < deadline:
+            more = tachycardia_lines(1)
+            for line in more:
+                line["payload"]["seq"] = seq
+            seq += 1
+            publish(more, broker.url(), None)
+            time.sleep(0.5)
         out, err = proc.communicate(timeout=60)
         r = subprocess.CompletedProcess(proc.args, proc.returncode, out, err)
         assert r.returncode == 0, r.stderr
