@@ -185,7 +185,11 @@ class Circulation:
         pc = par["p_collapse"]
         open_ = p[:, RA] > pc
         q[:, 0] = (p[:, SA] - p[:, SV]) * g_sys
-        q[:, 1] = (p[:, SV] - np.maximum(p[:, RA], pc)) * g_vr
+        # venous return through the waterfall; the venous valves and the filling heart
+        # allow no steady backflow, so it is zero (not negative) once p_RA exceeds p_SV
+        drive = p[:, SV] - np.maximum(p[:, RA], pc)
+        forward = drive > 0
+        q[:, 1] = np.maximum(drive, 0.0) * g_vr
         q[:, 3] = (p[:, PA] - p[:, PV]) * g_pul
         # the two Starling pumps side by side: [right, left]
         beat = hr * (1.0 / 60.0) * _filling_time_factor(hr)
@@ -203,7 +207,8 @@ class Circulation:
             return p, q, sv_beat * _filling_time_factor(hr), None, None
         a, b = self._a, self._b
         a[:, 0], b[:, 0] = g_sys, -g_sys
-        a[:, 1], b[:, 1] = g_vr, np.where(open_, -g_vr, 0.0)
+        a[:, 1] = np.where(forward, g_vr, 0.0)
+        b[:, 1] = np.where(open_ & forward, -g_vr, 0.0)
         a[:, 3], b[:, 3] = g_pul, -g_pul
         dfill = smax * np.where(x > 0, ex / self._k, 0.0) * h
         dout = smax * g * np.where((h_raw > 0.2) & (h_raw < 1.3), -self._after, 0.0)
@@ -264,8 +269,10 @@ class Circulation:
         # retained infusions (colloid, blood) raise the volume that exchange restores
         self.volume_target += ctl.infusion_ml_min * ctl.infusion_retained * (h / 60.0)
         self.t += h
-        # baroreflex with the new arterial pressure
-        self._reflex((self.V[:, SA] - v0[:, SA]) * self._invC[:, SA], h)
+        # baroreflex with the new arterial pressure and the step's pulse pressure
+        self._reflex((self.V[:, SA] - v0[:, SA]) * self._invC[:, SA]
+                     + self.par["pp_weight"] * (self._sv[1] * self._invC[:, SA]
+                                                - self.par["pp0"]), h)
         self._dirty = True
 
     def _reflex(self, p_sa: np.ndarray, h: float) -> None:
@@ -461,7 +468,7 @@ class Circulation:
             p_sv = (v[:, 1] - v0_sv) / c_sv
             q_sys = (p_sa - p_sv) * g_sys
             open_ = pra > pc
-            q_vr = (p_sv - np.where(open_, pra, pc)) * g_vr
+            q_vr = np.maximum(p_sv - np.where(open_, pra, pc), 0.0) * g_vr
             # pump returns q_vr to the arteries: dV_sa = q_vr - q_sys, dV_sv = q_sys - q_vr
             f = q_vr - q_sys
             # implicit Euler on the single free mode (total volume is fixed)
@@ -472,7 +479,7 @@ class Circulation:
             v[:, 0] += dv
             v[:, 1] -= dv
         p_sv = (v[:, 1] - v0_sv) / c_sv
-        return (p_sv - np.where(pra > pc, pra, pc)) * g_vr * 0.06
+        return np.maximum(p_sv - np.where(pra > pc, pra, pc), 0.0) * g_vr * 0.06
 
 
 def _filling_time_factor(hr: np.ndarray) -> np.ndarray:
