@@ -185,11 +185,7 @@ class Circulation:
         pc = par["p_collapse"]
         open_ = p[:, RA] > pc
         q[:, 0] = (p[:, SA] - p[:, SV]) * g_sys
-        # venous return through the waterfall; the venous valves and the filling heart
-        # allow no steady backflow, so it is zero (not negative) once p_RA exceeds p_SV
-        drive = p[:, SV] - np.maximum(p[:, RA], pc)
-        forward = drive > 0
-        q[:, 1] = np.maximum(drive, 0.0) * g_vr
+        q[:, 1] = (p[:, SV] - np.maximum(p[:, RA], pc)) * g_vr
         q[:, 3] = (p[:, PA] - p[:, PV]) * g_pul
         # the two Starling pumps side by side: [right, left]
         beat = hr * (1.0 / 60.0) * _filling_time_factor(hr)
@@ -207,8 +203,7 @@ class Circulation:
             return p, q, sv_beat * _filling_time_factor(hr), None, None
         a, b = self._a, self._b
         a[:, 0], b[:, 0] = g_sys, -g_sys
-        a[:, 1] = np.where(forward, g_vr, 0.0)
-        b[:, 1] = np.where(open_ & forward, -g_vr, 0.0)
+        a[:, 1], b[:, 1] = g_vr, np.where(open_, -g_vr, 0.0)
         a[:, 3], b[:, 3] = g_pul, -g_pul
         dfill = smax * np.where(x > 0, ex / self._k, 0.0) * h
         dout = smax * g * np.where((h_raw > 0.2) & (h_raw < 1.3), -self._after, 0.0)
