@@ -23,7 +23,9 @@ Venous return is not a formula of its own: it is the flow through R_vr, and the 
 pressure settles where it equals the right heart's output (Guyton AC, Physiol Rev 1955;35:123).
 At steady state every flow in the ring is equal. The arterial baroreflex moves heart rate,
 contractility, systemic resistance and venous unstressed volume towards an arterial pressure
-set-point, each through a saturating (tanh) gain and a first-order lag.
+set-point, each through a saturating (tanh) gain and a first-order lag; the pressure it
+senses is the mean plus a share of the pulse pressure's departure from rest (baroreceptors
+respond to pulsatile stretch too), so a narrowing pulse pressure drives it as well.
 
 Integration: the five volumes are advanced with the linearly implicit (Rosenbrock) Euler
 method, ``(I - h J) dV = h f(V)``, with the analytic Jacobian ``J``; the reflex states are
@@ -113,7 +115,7 @@ class Circulation:
     (5.4, 7.0)
     >>> c.controls.bleed_ml_min = 100.0; c.run(300)      # 500 mL in 5 minutes
     >>> round(float(c.hr[0])), round(float(c.map[0])), round(float(c.blood_volume[0] - c.par["volume"][0]))
-    (80, 89, -495)
+    (81, 93, -495)
     """
 
     def __init__(self, beds: Patient | Params | Sequence[Patient | Params],
