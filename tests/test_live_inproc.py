@@ -221,7 +221,7 @@ def test_broker_settings():
 
 def test_run_without_config_uses_the_shipped_default():
     from hemostream.config import DEFAULT_CONFIG, load_config
-    from hemostream.live.cli import _config
+    from hemostream.app.cli import live_config as _config
     assert _config(None) == load_config(DEFAULT_CONFIG)
 
 

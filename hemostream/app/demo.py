@@ -26,17 +26,28 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable, Iterable, Iterator, TextIO
 
+from .. import CAUTION
 from ..core.config import Config
-from ..core.processor import iso
-from .inproc import InprocBroker
-from .publish import (Retimer, _parse, as_record, close_gaps, payload_bytes,
-                      publish_recording_lines)
-from .service import Service, status_topic
-from .transport import TransportError
+from ..core.wire import (bed_topic, command_body, encode, format_epoch, is_status_topic,
+                         parse_time, parse_time_or_none, split_topic, status_topic, topic)
+from ..dashboard import Dashboard, Screen
+from ..live.health import status_payload
+from ..live.inproc import InprocBroker
+from ..live.mqtt import MqttTransport
+from ..live.publish import (Retimer, as_record, close_gaps, payload_bytes,
+                            publish_recording_lines)
+from ..live.service import Service
+from ..live.service import status_topic as service_status_topic
+from ..live.transport import TransportError
+from .watch import unit_view
+
+try:
+    import simulators
+except ImportError:              # a separate, optional package: the example recording then
+    simulators = None
 
 log = logging.getLogger("hemostream.live.demo")
 
-from .. import CAUTION
 EXAMPLE_RECORDING = (Path(__file__).resolve().parent.parent.parent / "simulators"
                      / "recordings" / "example-ward.jsonl")
 
@@ -48,9 +59,7 @@ def demo_lines(scenario: str | None = None, duration_s: float | None = None,
     example recording, and the sentence says so."""
     why = "the simulators are not installed"
     missing_generate = "the simulators package has no generate() (reinstall: pip install -e .)"
-    try:
-        import simulators
-    except ImportError:
+    if simulators is None:
         generate = None
     else:
         generate = getattr(simulators, "generate", None)
@@ -77,8 +86,8 @@ def demo_lines(scenario: str | None = None, duration_s: float | None = None,
         t0 = None
         with open(EXAMPLE_RECORDING, "rb") as f:
             for rec in close_gaps(r for r in map(as_record, f) if r is not None):
-                if duration_s is not None and isinstance(rec.get("rx"), str):
-                    t = _parse(rec["rx"])
+                t = parse_time_or_none(rec.get("rx")) if duration_s is not None else None
+                if t is not None:
                     t0 = t if t0 is None else t0
                     if t - t0 > duration_s:
                         return
@@ -115,27 +124,27 @@ class Summary:
     def apply(self, topic: str, payload: Any) -> None:
         if not isinstance(payload, dict):
             return
-        parts = topic.split("/")
-        if len(parts) != 4:
+        t = split_topic(topic)
+        if t is None:
             return
         self.outputs += 1
-        if parts[1] == "_svc":
+        if is_status_topic(t):
             if payload.get("kind") == "health":
                 self.health = payload
             return
-        b = self.beds.setdefault(f"{parts[1]}/{parts[2]}", {"values": {}, "alarms": None})
-        if parts[3] == "derived":
+        b = self.beds.setdefault(f"{t.unit}/{t.bed}", {"values": {}, "alarms": None})
+        if t.kind == "derived":
             b["time"] = payload.get("time")
             for p, v in (payload.get("measured") or {}).items():
                 if isinstance(v, list) and v:
                     b["values"][p] = v[0]
             b["values"].update(payload.get("values") or {})
-        elif parts[3] == "alarm":
+        elif t.kind == "alarm":
             if "state" in payload:
                 b["alarms"] = payload["state"]
             elif "event" in payload:
                 ev = payload["event"]
-                self.events.append(f"{ev.get('time', '')[11:19]} {topic.split('/')[2]} "
+                self.events.append(f"{ev.get('time', '')[11:19]} {t.bed} "
                                    f"{ev.get('rule', ev.get('alarm_id', '?'))} "
                                    f"{ev.get('transition', '')} ({ev.get('priority', '')})")
 
@@ -179,8 +188,9 @@ async def _feed_inproc(broker: InprocBroker, lines: Iterable[dict], clock: Scale
     for rec in lines:
         if stop.is_set():
             break
-        if isinstance(rec.get("rx"), str):
-            delay = clock.wall_delay(_parse(rec["rx"]))
+        rx = parse_time_or_none(rec.get("rx"))
+        if rx is not None:
+            delay = clock.wall_delay(rx)
             if delay > 0:
                 try:
                     await asyncio.wait_for(stop.wait(), delay)
@@ -225,11 +235,10 @@ async def run_demo(cfg: Config, db_url: str, *, speed: float = 1.0,
             except (NotImplementedError, RuntimeError):
                 pass
     summary = Summary()
-    will_topic = status_topic(cfg)
-    offline = json.dumps({"v": 1, "kind": "status", "state": "offline",
-                          "instance": cfg.instance, "reason": "connection lost"}).encode()
-    out_filters = ["hemo/+/+/derived", "hemo/+/+/alarm", "hemo/+/+/note",
-                   f"hemo/_svc/{cfg.instance}/status"]
+    will_topic = service_status_topic(cfg)
+    offline = status_payload(cfg.instance, "offline", None, reason="connection lost")
+    out_filters = [topic("+", "+", "derived"), topic("+", "+", "alarm"),
+                   topic("+", "+", "note"), status_topic(cfg.instance)]
 
     def show(topic: str, payload: bytes) -> None:
         try:
@@ -246,7 +255,6 @@ async def run_demo(cfg: Config, db_url: str, *, speed: float = 1.0,
                                   clock=clock, receive_maximum=cfg.broker.receive_maximum)
         watcher = broker.client("hemostream-demo-view", persistent=False)
     else:
-        from .mqtt import MqttTransport
         cfg = cfg.model_copy(update={"broker": cfg.broker.model_copy(
             update={"url": broker_url})})
         transport = MqttTransport(cfg.broker, will=(will_topic, offline), clock=clock)
@@ -278,7 +286,7 @@ async def run_demo(cfg: Config, db_url: str, *, speed: float = 1.0,
             if dash is not None and not dash[0].is_alive():
                 stop.set()                    # q in the dashboard
             if view is None:
-                stamp = iso(clock())[11:19]
+                stamp = format_epoch(clock())[11:19]
                 print(f"[{stamp}] " + CAUTION.split(".")[0] + ".", file=out)
                 for line in summary.lines():
                     print(line, file=out)
@@ -346,14 +354,7 @@ def _start_dashboard(svc: Service, clock: ScaledClock, loop: asyncio.AbstractEve
     """The rich unit dashboard in a thread, fed from the published outputs; acknowledge and
     audio pause keys send ``cmd`` messages the same way ``hemostream ack`` does. None when the
     dashboard is not available (the compact summary is printed instead)."""
-    try:
-        from ..dashboard import Dashboard, Screen, UnitView
-    except ImportError:
-        return None
-    from ..core.wire import format_time
-    from datetime import datetime, timezone
-
-    model = UnitView()
+    model = unit_view(svc.cfg)          # the configured maximum ages, as ``watch`` uses
     lock = threading.Lock()
 
     def feed(topic: str, payload: Any) -> None:
@@ -361,14 +362,12 @@ def _start_dashboard(svc: Service, clock: ScaledClock, loop: asyncio.AbstractEve
             model.apply(topic, payload)
 
     def send_command(bed_key: str, action: str, alarm_id: str) -> None:
-        body = {"v": 1, "time": format_time(datetime.fromtimestamp(clock(), timezone.utc)),
-                "action": action, "alarm": alarm_id, "by": operator or "demo"}
-        data = json.dumps(body, separators=(",", ":")).encode()
-        topic = f"hemo/{bed_key}/cmd"
+        data = encode(command_body(action, alarm_id, operator or "demo", clock()))
+        cmd_topic = bed_topic(bed_key, "cmd")
         if broker is not None:
-            loop.call_soon_threadsafe(broker.publish, topic, data, 1, False)
+            loop.call_soon_threadsafe(broker.publish, cmd_topic, data, 1, False)
         else:
-            loop.call_soon_threadsafe(watcher.publish, topic, data, 1, False)
+            loop.call_soon_threadsafe(watcher.publish, cmd_topic, data, 1, False)
 
     def status() -> dict:
         h = svc.last_health or {}
