@@ -26,11 +26,13 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable, Iterable, Iterator, TextIO
 
+from rich.console import Console
+
 from .. import CAUTION
 from ..core.config import Config
 from ..core.wire import (bed_topic, command_body, encode, format_epoch, is_status_topic,
-                         parse_time, parse_time_or_none, split_topic, status_topic, topic)
-from ..dashboard import Dashboard, Screen
+                         parse_time_or_none, split_topic, status_topic, topic)
+from ..dashboard import Dashboard, Screen, UnitView
 from ..live.health import status_payload
 from ..live.inproc import InprocBroker
 from ..live.mqtt import MqttTransport
@@ -264,10 +266,9 @@ async def run_demo(cfg: Config, db_url: str, *, speed: float = 1.0,
     svc_task = asyncio.create_task(svc.run())
     dash = None
     if dashboard:
-        dash = _start_dashboard(svc, clock, loop, source, operator,
-                                broker if broker_url is None else None, watcher)
-        if dash is not None:
-            view = dash[2]
+        dash = demo_dashboard(svc, clock, loop, source, operator,
+                              broker if broker_url is None else None, watcher).start()
+        view = dash.feed
 
     async def watch() -> None:
         while True:
@@ -283,7 +284,7 @@ async def run_demo(cfg: Config, db_url: str, *, speed: float = 1.0,
     async def ticker() -> None:
         while True:
             await asyncio.sleep(every_s if dash is None else 0.2)
-            if dash is not None and not dash[0].is_alive():
+            if dash is not None and not dash.alive():
                 stop.set()                    # q in the dashboard
             if view is None:
                 stamp = format_epoch(clock())[11:19]
@@ -319,8 +320,7 @@ async def run_demo(cfg: Config, db_url: str, *, speed: float = 1.0,
                 await asyncio.sleep(0.05)
     finally:
         if dash is not None:
-            dash[1].set()
-            await asyncio.to_thread(dash[0].join, 5)
+            await asyncio.to_thread(dash.close, 5)
         svc.stop()
         code = await svc_task
         for t in (watch_task, tick_task):
@@ -348,18 +348,44 @@ async def run_demo(cfg: Config, db_url: str, *, speed: float = 1.0,
     return result
 
 
-def _start_dashboard(svc: Service, clock: ScaledClock, loop: asyncio.AbstractEventLoop,
-                     source: str, operator: str | None, broker: InprocBroker | None,
-                     watcher) -> tuple[threading.Thread, threading.Event, Callable] | None:
-    """The rich unit dashboard in a thread, fed from the published outputs; acknowledge and
-    audio pause keys send ``cmd`` messages the same way ``hemostream ack`` does. None when the
-    dashboard is not available (the compact summary is printed instead)."""
-    model = unit_view(svc.cfg)          # the configured maximum ages, as ``watch`` uses
-    lock = threading.Lock()
+@dataclass
+class DemoDashboard:
+    """The rich unit dashboard of the demo, fed from the published outputs (:meth:`feed`),
+    redrawn on its own thread; acknowledge and audio pause keys send ``cmd`` messages the same
+    way ``hemostream ack`` does."""
 
-    def feed(topic: str, payload: Any) -> None:
-        with lock:
-            model.apply(topic, payload)
+    dashboard: Dashboard
+    model: UnitView
+    lock: threading.Lock
+    stop: threading.Event = field(default_factory=threading.Event)
+    thread: threading.Thread | None = None
+
+    def feed(self, topic: str, payload: Any) -> None:
+        with self.lock:
+            self.model.apply(topic, payload)
+
+    def start(self) -> "DemoDashboard":
+        self.thread = threading.Thread(target=self.dashboard.run, args=(self.stop,),
+                                       daemon=True, name="dashboard")
+        self.thread.start()
+        return self
+
+    def alive(self) -> bool:
+        return self.thread is not None and self.thread.is_alive()
+
+    def close(self, timeout: float = 5.0) -> None:
+        self.stop.set()
+        if self.thread is not None:
+            self.thread.join(timeout)
+
+
+def demo_dashboard(svc: Service, clock: Callable[[], float], loop: asyncio.AbstractEventLoop,
+                   source: str, operator: str | None, broker: InprocBroker | None,
+                   watcher, console: Console | None = None) -> DemoDashboard:
+    """The demo's dashboard (not started): the same model as ``watch`` builds, with the
+    configured maximum ages of ``svc.cfg``."""
+    model = unit_view(svc.cfg)
+    lock = threading.Lock()
 
     def send_command(bed_key: str, action: str, alarm_id: str) -> None:
         data = encode(command_body(action, alarm_id, operator or "demo", clock()))
@@ -374,9 +400,7 @@ def _start_dashboard(svc: Service, clock: ScaledClock, loop: asyncio.AbstractEve
         return {"connected": svc.t.connected, "rate": h.get("messages_per_s", 0.0),
                 "lag_s": (h.get("lag_s") or {}).get("ingest_max")}
 
-    stop = threading.Event()
     dash = Dashboard(model, Screen(unit="demo ward", source=source, operator=operator),
-                     clock=clock, send_command=send_command, status=status, lock=lock)
-    th = threading.Thread(target=dash.run, args=(stop,), daemon=True, name="dashboard")
-    th.start()
-    return th, stop, feed
+                     clock=clock, send_command=send_command, status=status, lock=lock,
+                     console=console)
+    return DemoDashboard(dash, model, lock)
