@@ -1,6 +1,6 @@
 """``hemostream demo``: a simulated ward through the live pipeline, with no broker to install.
 
-The ward's messages go through an in-process broker (:mod:`.inproc`: persistent session,
+The ward's messages go through an in-process broker (:mod:`hemostream.live.inproc`: persistent session,
 QoS 1 acknowledgement after the commit, retained alarm state) into the same
 :class:`~hemostream.live.service.Service` that ``hemostream run`` uses, and into a SQLite file.
 ``--broker URL`` sends the same stream through a real broker instead. A subscriber of the
@@ -39,7 +39,6 @@ from ..live.mqtt import MqttTransport
 from ..live.publish import (Retimer, as_record, close_gaps, payload_bytes,
                             publish_recording_lines)
 from ..live.service import Service
-from ..live.service import status_topic as service_status_topic
 from ..live.transport import TransportError
 from .watch import unit_view
 
@@ -237,7 +236,7 @@ async def run_demo(cfg: Config, db_url: str, *, speed: float = 1.0,
             except (NotImplementedError, RuntimeError):
                 pass
     summary = Summary()
-    will_topic = service_status_topic(cfg)
+    will_topic = status_topic(cfg.instance)
     offline = status_payload(cfg.instance, "offline", None, reason="connection lost")
     out_filters = [topic("+", "+", "derived"), topic("+", "+", "alarm"),
                    topic("+", "+", "note"), status_topic(cfg.instance)]
