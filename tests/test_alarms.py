@@ -18,7 +18,7 @@ import textwrap
 import pytest
 
 from hemostream.core.rules import CommandError, RuleEvent, RulesEngine
-from hemostream.core.rules_config import AlarmConfig, RulesConfig
+from hemostream.core.rules.config import AlarmConfig, RulesConfig
 
 BED = "WARD7/bed-01"
 OTHER = "WARD7/bed-02"

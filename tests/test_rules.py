@@ -17,7 +17,7 @@ import pytest
 from pydantic import ValidationError
 
 from hemostream.core.rules import RulesEngine
-from hemostream.core.rules_config import RulesConfig
+from hemostream.core.rules.config import RulesConfig
 
 BED = "WARD7/bed-03"
 DEV = "gw-w7-03"
