@@ -7,12 +7,13 @@ import time as _time
 from dataclasses import dataclass, fields
 from datetime import datetime
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any, Callable, Literal
 
 from pydantic import BaseModel, ConfigDict, StrictStr, ValidationError
 
 from .core.config import Config
 from .core.processor import Counters, Processor, RecordingLineBytes, epoch
+from .core.rules.protocol import RulesLayer
 from .core.wire import ObsMessage, Time
 from .store import Writer, load_resume, open_engine, rows_of
 
@@ -113,7 +114,7 @@ def feed_line(proc: Processor, line: bytes, lineno: int, max_bytes: int) -> floa
 def replay_file(path: str | Path, db_url: str | None = None, config: Config | None = None, *,
                 speed: float | None = None,
                 progress: Callable[[int, int], None] | None = None,
-                rules: Any = "default") -> ReplaySummary:
+                rules: RulesLayer | None | Literal["default"] = "default") -> ReplaySummary:
     """Replay ``path`` into ``db_url`` (default: the config's store URL).
 
     ``speed`` paces the replay at N x real time (by arrival times); None is as fast as
@@ -176,7 +177,7 @@ def replay_file(path: str | Path, db_url: str | None = None, config: Config | No
     return summary
 
 
-def make_rules(cfg: Config) -> Any:
+def make_rules(cfg: Config) -> RulesLayer | None:
     """The rules engine for ``cfg`` (None when ``[rules] enabled = false``)."""
     if not cfg.rules.enabled:
         return None

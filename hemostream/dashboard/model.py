@@ -16,6 +16,7 @@ from dataclasses import dataclass, field
 from datetime import datetime
 from typing import Any
 
+from ..core.alarms import PRIORITY_RANK
 from ..core.config import DEFAULT_MAX_AGE
 
 #: how long a derived value stays current without a new publication (seconds)
@@ -24,7 +25,6 @@ DERIVED_MAX_AGE = 30.0
 STRIP_SECONDS = 30 * 60
 STRIP_STEP = 30.0
 
-PRIORITY_RANK = {"high": 3, "medium": 2, "low": 1, "info": 0}
 
 
 def parse_time(text: str | None) -> float | None:

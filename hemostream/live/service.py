@@ -26,12 +26,13 @@ import logging
 import random
 import time
 from collections import deque
-from typing import Any, Callable
+from typing import Any, Callable, Literal
 
 from sqlalchemy import event
 
 from ..core.config import Config
 from ..core.processor import Processor
+from ..core.rules.protocol import RulesLayer
 from ..core.wire import TOPIC_KINDS_IN
 from ..replay import make_rules
 from ..store import StoreError, Writer, load_resume, open_engine, rows_of
@@ -174,7 +175,8 @@ class Service:
     """``hemostream run`` (and the demo): run until :meth:`stop`, then shut down cleanly."""
 
     def __init__(self, cfg: Config, transport: Transport, *, db_url: str | None = None,
-                 rules: Any = "default", clock: Callable[[], float] = time.time,
+                 rules: RulesLayer | None | Literal["default"] = "default",
+                 clock: Callable[[], float] = time.time,
                  log_health: bool = True,
                  on_health: Callable[[dict], None] | None = None) -> None:
         self.cfg = cfg
