@@ -5,15 +5,16 @@ from __future__ import annotations
 import json
 import time as _time
 from dataclasses import dataclass, fields
-from datetime import datetime
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any, Callable, Literal
 
 from pydantic import BaseModel, ConfigDict, StrictStr, ValidationError
 
 from .core.config import Config
-from .core.processor import Counters, Processor, RecordingLineBytes, epoch
-from .core.wire import ObsMessage, Time
+from .core.processor import Counters, Processor, RecordingLineBytes
+from .core.rules.protocol import RulesLayer
+from .core.wire import ObsMessage, Time, epoch, parse_time
+from .pipeline import make_rules
 from .store import Writer, load_resume, open_engine, rows_of
 
 
@@ -43,12 +44,7 @@ class ReplaySummary(Counters):
 
 
 def _parse_rx(v: Any) -> float:
-    if not isinstance(v, str):
-        raise ValueError("'rx' must be an RFC 3339 timestamp string")
-    t = datetime.fromisoformat(v)
-    if t.tzinfo is None:
-        raise ValueError(f"'rx' {v!r} has no UTC offset")
-    return epoch(t)
+    return parse_time(v, "'rx'")
 
 
 class _ObsLine(BaseModel):
@@ -113,7 +109,7 @@ def feed_line(proc: Processor, line: bytes, lineno: int, max_bytes: int) -> floa
 def replay_file(path: str | Path, db_url: str | None = None, config: Config | None = None, *,
                 speed: float | None = None,
                 progress: Callable[[int, int], None] | None = None,
-                rules: Any = "default") -> ReplaySummary:
+                rules: RulesLayer | None | Literal["default"] = "default") -> ReplaySummary:
     """Replay ``path`` into ``db_url`` (default: the config's store URL).
 
     ``speed`` paces the replay at N x real time (by arrival times); None is as fast as
@@ -174,11 +170,3 @@ def replay_file(path: str | Path, db_url: str | None = None, config: Config | No
     summary.rejected = dict(sorted(summary.rejected.items()))
     summary.seconds = _time.perf_counter() - t0
     return summary
-
-
-def make_rules(cfg: Config) -> Any:
-    """The rules engine for ``cfg`` (None when ``[rules] enabled = false``)."""
-    if not cfg.rules.enabled:
-        return None
-    from .core.rules import RulesEngine
-    return RulesEngine(cfg.rules)
