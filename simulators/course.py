@@ -18,6 +18,7 @@ import numpy as np
 
 from .model import Circulation
 from .scenario import CONTROL_NAMES, Scenario, load_scenario
+from .ward import WardBed
 
 __all__ = ["true_course", "true_courses", "COURSE_KEYS"]
 
@@ -46,8 +47,6 @@ def true_courses(specs: Iterable[tuple[Scenario | str, int]], seeds: Iterable[in
     """:func:`true_course` for several ``(scenario, bed)`` pairs simulated together (one
     model, every bed of every pair side by side: much faster than one at a time). Each
     pair runs for its scenario's duration (or ``duration_s``)."""
-    from .ward import WardBed           # late: ward imports this package's modules
-
     seeds = list(seeds)
     beds, groups, ends = [], [], []
     for scenario, bed in specs:
