@@ -59,6 +59,10 @@ class IngestConfig(BaseModel):
     #: messages older than the bed's newest by more than this are stored, flagged late and
     #: not fed to derivations; within it they are handled in measurement order
     late_after_s: Annotated[float, Field(ge=0)] = 30.0
+    #: a bed's clock (late handling, which value is current, the rules' time) follows the
+    #: measurement times but never runs ahead of arrival by more than this: one message
+    #: dated ahead (within max_clock_skew_s) cannot push it forward and hold back the rest
+    bed_clock_lead_s: Annotated[float, Field(ge=0)] = 5.0
     #: per device, how many recent message identities are remembered to drop duplicates
     dedup_per_device: Annotated[int, Field(ge=16)] = 512
     plausible: dict[str, Bounds] = Field(
@@ -102,6 +106,9 @@ class StoreConfig(BaseModel):
     derived_every_s: Annotated[float, Field(ge=0)] = 60.0
     derived_deadband: Annotated[float, Field(ge=0)] = 0.05
     batch_rows: Annotated[int, Field(gt=0)] = 20000
+    #: on stop, how long to wait for a busy or unreachable database before giving up on the
+    #: last batches (they stay unacknowledged, so the broker delivers them again)
+    shutdown_wait_s: Annotated[float, Field(gt=0)] = 30.0
 
 
 class UnitConfig(BaseModel):

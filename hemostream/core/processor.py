@@ -17,13 +17,16 @@ from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from typing import Any, Iterable
 
-from pydantic import ValidationError
+from typing import Annotated, Literal
+
+from pydantic import BaseModel, ConfigDict, Field, StrictInt, StrictStr, ValidationError
 
 from .config import Config
 from .derive import DERIVED_UNITS, Current, derive_all, bsa_dubois, bsa_mosteller
 from .units import BY_DIMENSION, CANONICAL, UNITS
-from .wire import (PARAMS, PAYLOAD_MODELS, TOPIC_KINDS_OUT, AdmitMessage, CommandMessage,
-                   NoteMessage, ObsMessage, TopicError, parse_topic)
+from .wire import (PARAMS, PAYLOAD_MODELS, SEQ_MAX, TOPIC_KINDS_OUT, AdmitMessage,
+                   CommandMessage, NoteMessage, Observation, ObsMessage, Time, TopicError,
+                   parse_topic)
 
 _EPOCH = datetime(1970, 1, 1, tzinfo=timezone.utc)
 
@@ -64,11 +67,11 @@ def inputs_json(inputs: Iterable[tuple[str, float]]) -> str:
     return "[" + ",".join(parts) + "]"
 
 
-def format_validation_error(err: ValidationError, limit: int = 5) -> str:
+def format_validation_error(err: ValidationError, limit: int = 5, prefix: str = "") -> str:
     """Turn pydantic's errors into one line a person can act on: field path, problem, input."""
     parts = []
     for e in err.errors(include_url=False)[:limit]:
-        loc = ""
+        loc = prefix.rstrip(".") if prefix else ""
         for item in e["loc"]:
             if isinstance(item, int):
                 loc += f"[{item}]"
@@ -324,16 +327,42 @@ class Processor:
                                       f"{ing.max_payload_bytes} bytes (not parsed)")
         tp = self._route(topic)
         model = PAYLOAD_MODELS[tp.kind]
+        index = None
         try:
             if isinstance(payload, dict):
                 msg = model.model_validate(payload)
             else:
                 msg = model.model_validate_json(payload)
         except ValidationError as e:
-            raise Reject(_category(e), format_validation_error(e)) from None
-        self._accept(tp, topic, msg, rx, payload)
+            if tp.kind != "obs" or not _only_in_observations(e):
+                raise Reject(_category(e), format_validation_error(e)) from None
+            msg, index = self._good_observations(topic, payload, rx, e)
+        self._accept(tp, topic, msg, rx, payload, index)
 
-    def _accept(self, tp, topic: str, msg: Any, rx: float, payload: bytes | str | dict) -> None:
+    def _good_observations(self, topic: str, payload: bytes | str | dict, rx: float,
+                           err: ValidationError) -> tuple[ObsMessage, list[int]]:
+        """An obs message whose envelope is valid but some observations are not: each bad
+        observation is a reject of its own (with its index), the rest go on. When none is
+        valid, the message is one reject, as before."""
+        doc = payload if isinstance(payload, dict) else json.loads(payload)
+        env = _ObsEnvelope.model_validate(doc)
+        good, index, bad = [], [], []
+        for i, o in enumerate(env.obs):
+            try:
+                good.append(Observation.model_validate(o))
+                index.append(i)
+            except ValidationError as e:
+                bad.append((i, e))
+        if not good:
+            raise Reject(_category(err), format_validation_error(err))
+        for i, e in bad:
+            self._reject(_category(e), format_validation_error(e, prefix=f"obs[{i}]."),
+                         topic, payload, rx, i, env.device, env.seq)
+        return ObsMessage.model_construct(v=env.v, device=env.device, seq=env.seq,
+                                          time=env.time, obs=good), index
+
+    def _accept(self, tp, topic: str, msg: Any, rx: float, payload: bytes | str | dict,
+                index: list[int] | None = None) -> None:
         ing = self.cfg.ingest
         t = epoch(msg.time)
         if t - rx > ing.max_clock_skew_s:
@@ -342,7 +371,7 @@ class Processor:
                          "check the gateway's clock")
         bed = self.beds.get((tp.unit, tp.bed)) or self._bed(tp.unit, tp.bed)
         if tp.kind == "obs":
-            self._obs(bed, topic, msg, t, rx, payload)
+            self._obs(bed, topic, msg, t, rx, payload, index)
         else:
             ident = (tp.kind, t, hashlib.sha1(msg.model_dump_json().encode()).hexdigest()[:16])
             if self.dedup.check_and_add(topic, ident):
@@ -378,14 +407,14 @@ class Processor:
         return mid
 
     def _obs(self, bed: _Bed, topic: str, msg: ObsMessage, t: float, rx: float,
-             payload: bytes | str | dict) -> None:
+             payload: bytes | str | dict, index: list[int] | None = None) -> None:
         if self.dedup.check_and_add(msg.device, obs_identity(msg.seq, t)):
             self.counters.duplicates += 1
             self.out.duplicates += 1
             return
         late = t < bed.newest - self.cfg.ingest.late_after_s
         mid = self._message_row(bed, topic, "obs", rx, t, msg.device, msg.seq, late,
-                                len(msg.obs))
+                                len(msg.obs) if index is None else index[-1] + 1)
         if late:
             self.counters.late += 1
         skew = self.cfg.ingest.max_clock_skew_s
@@ -396,7 +425,12 @@ class Processor:
         latest = bed.latest
         bed_id = bed.id
         n = 0
-        for i, o in enumerate(msg.obs):
+        # the bed's clock follows measurement time but may not run ahead of arrival by more
+        # than bed_clock_lead_s: a value dated further ahead is stored, yet cannot stay
+        # current against values that arrive after it
+        ahead = rx + self.cfg.ingest.bed_clock_lead_s
+        for k, o in enumerate(msg.obs):
+            i = k if index is None else index[k]
             p = o.param
             c = conv.get((p, o.unit))
             if c is None:
@@ -434,14 +468,15 @@ class Processor:
                 nonvalid[p] = status
                 continue
             cur = latest.get(p)
-            if cur is None or ot >= cur.time:
+            if cur is None or ot >= cur.time or cur.time > ahead:
                 latest[p] = Current(value, ot)
                 new.add(p)
         self.counters.observations += n
         if late:
             return
-        if t > bed.newest:
-            bed.newest = t
+        clock = t if t <= ahead else ahead
+        if clock > bed.newest:
+            bed.newest = clock
         self._derive(bed, new, nonvalid, msg.device)
 
     def _derive(self, bed: _Bed, new: set[str], nonvalid: dict[str, str], device: str) -> None:
@@ -574,6 +609,23 @@ class Processor:
             "rx": rx, "topic": topic[:512], "category": category, "reason": reason,
             "obs_index": obs_index, "device": device, "seq": seq,
             "raw": raw[: self.cfg.ingest.stored_raw_bytes], "size": len(raw)})
+
+
+class _ObsEnvelope(BaseModel):
+    """An obs message with its observations left unchecked (to check them one by one)."""
+
+    model_config = ConfigDict(extra="ignore", allow_inf_nan=False)
+    v: Literal[1]
+    device: Annotated[StrictStr, Field(min_length=1, max_length=64, pattern=r"^[\x21-\x7e]+$")]
+    seq: Annotated[StrictInt, Field(ge=0, le=SEQ_MAX)]
+    time: Time
+    obs: Annotated[list[Any], Field(min_length=1, max_length=256)]
+
+
+def _only_in_observations(err: ValidationError) -> bool:
+    """Every error is inside one of the observations (obs[i]...), not in the envelope."""
+    return all(len(e["loc"]) >= 3 and e["loc"][0] == "obs" and isinstance(e["loc"][1], int)
+               for e in err.errors(include_url=False))
 
 
 def _category(err: ValidationError) -> str:

@@ -264,7 +264,13 @@ class Service:
                 self._fail(f"database: {e}")
         writer = self.writer
         try:
-            await asyncio.to_thread(writer.flush)
+            await asyncio.wait_for(asyncio.to_thread(writer.flush),
+                                   self.cfg.store.shutdown_wait_s)
+        except asyncio.TimeoutError:
+            writer.give_up()        # the database is away: what is unwritten stays unacked
+            self._fail(f"the database did not take the last batches within "
+                       f"{self.cfg.store.shutdown_wait_s:g} s ({writer.trouble}); they were "
+                       f"not acknowledged, so the broker delivers them again")
         except StoreError as e:
             self._fail(str(e))
         # the commit callbacks hop back to this loop: let them run, so the acks go out
@@ -447,6 +453,11 @@ class Service:
         h = self.health
         d = h.report(self.clock(), self.inq.qsize(), self.inq.maxsize,
                      h.received - h.stored, self.writer.q.qsize())
+        w = self.writer
+        d["database"] = {"state": "waiting" if w.trouble else "ok", "reason": w.trouble,
+                         "waiting_s": (round(self.clock() - w.trouble_since, 1)
+                                       if w.trouble_since else 0.0),
+                         "retries": w.retries, "refused_messages": w.refused}
         self.last_health = d
         if self.t.connected:
             self.t.publish(self.status_topic, json.dumps(d, separators=(",", ":")).encode(),
