@@ -26,6 +26,7 @@ from sqlalchemy.engine import Engine
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
 
 from .core.processor import OBSERVATION_COLUMNS, obs_identity
+from .core.redact import redact
 
 log = logging.getLogger(__name__)
 
@@ -199,7 +200,7 @@ def open_engine(url: str, *, create: bool = True) -> Engine:
     try:
         engine = create_engine(url, **kwargs)
     except Exception as e:  # bad URL, missing driver
-        raise StoreError(f"database URL {url!r}: {e}") from e
+        raise StoreError(redact(f"database URL {url!r}: {e}")) from None
     if engine.dialect.name == "sqlite":
         @event.listens_for(engine, "connect")
         def _pragmas(dbapi_conn, _rec):  # pragma: no cover - exercised via every test
@@ -218,8 +219,8 @@ def open_engine(url: str, *, create: bool = True) -> Engine:
             with engine.connect():
                 pass
     except Exception as e:
-        raise StoreError(f"cannot open database {url!r}: {e.__class__.__name__}: "
-                         f"{str(e).splitlines()[0]}") from e
+        raise StoreError(redact(f"cannot open database {url!r}: {e.__class__.__name__}: "
+                                f"{str(e).splitlines()[0]}")) from None
     return engine
 
 
@@ -388,7 +389,7 @@ class Writer:
     def submit(self, rows: dict[str, list[dict]],
                on_done: Callable[[], None] | None = None) -> None:
         if self.error is not None:
-            raise StoreError(f"database writes failed: {self.error}") from self.error
+            raise StoreError(f"database writes failed: {_first_line(self.error)}") from None
         self.q.put((rows, on_done))
 
     def _run(self) -> None:
@@ -489,13 +490,13 @@ class Writer:
         """Wait until everything submitted so far is written."""
         self.q.join()
         if self.error is not None:
-            raise StoreError(f"database writes failed: {self.error}") from self.error
+            raise StoreError(f"database writes failed: {_first_line(self.error)}") from None
 
     def close(self) -> None:
         self.q.put(None)
         self._t.join()
         if self.error is not None:
-            raise StoreError(f"database writes failed: {self.error}") from self.error
+            raise StoreError(f"database writes failed: {_first_line(self.error)}") from None
 
 
 def rows_of(outputs: Any) -> dict[str, list[dict]]:

@@ -30,6 +30,9 @@ def _with_overrides(cfg, broker: str | None = None, db: str | None = None):
 def _logging(level: str) -> None:
     logging.basicConfig(level=getattr(logging, level.upper()), stream=sys.stderr,
                         format="%(asctime)s %(levelname)s %(name)s: %(message)s")
+    from ..core.redact import RedactingFilter
+    for h in logging.getLogger().handlers:      # no password in any line, whoever logs it
+        h.addFilter(RedactingFilter())
     # paho logs packet summaries (topics, sizes) at debug; never payloads
     logging.getLogger("hemostream.live.paho").setLevel(
         logging.DEBUG if level.upper() == "DEBUG" else logging.WARNING)

@@ -442,7 +442,7 @@ class Service:
                 self.inq.put_nowait(_TICK)
             if self.writer.error is not None:
                 self._fail(f"database writes failed, stopping (nothing unstored was "
-                           f"acknowledged): {self.writer.error}")
+                           f"acknowledged): {self.writer.error.__class__.__name__}")
                 return
             self.outbox.prune()
             if time.monotonic() >= next_health:
