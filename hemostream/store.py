@@ -15,7 +15,7 @@ import queue
 import threading
 from operator import itemgetter
 import time as _time
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any, Callable, Iterable
 
 from sqlalchemy import (BigInteger, Boolean, Float, ForeignKey, Index, Integer, LargeBinary,
@@ -25,7 +25,7 @@ from sqlalchemy import exc as sa_exc
 from sqlalchemy.engine import Engine
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
 
-from .core.processor import OBSERVATION_COLUMNS, obs_identity
+from .core.processor import OBSERVATION_COLUMNS, obs_identity, raw_digest
 from .core.redact import redact
 
 log = logging.getLogger(__name__)
@@ -231,6 +231,8 @@ class Resume:
     next_ids: dict[str, int]
     beds: list[tuple[int, str, str]]
     messages: list[tuple[str, Any]]
+    #: (topic, digest) of recent rejects kept whole: a retained one is not stored again
+    retained_rejects: list[tuple[str, str]] = field(default_factory=list)
 
 
 def load_resume(engine: Engine, recent: int = 200_000) -> Resume:
@@ -242,11 +244,16 @@ def load_resume(engine: Engine, recent: int = 200_000) -> Resume:
         rows = conn.execute(
             select(m.c.kind, m.c.topic, m.c.device, m.c.seq, m.c.time, m.c.digest)
             .where(m.c.id > max_id - recent).order_by(m.c.id)).all()
+        rj = Rejected.__table__
+        rejects = conn.execute(
+            select(rj.c.topic, rj.c.raw).where(rj.c.size == func.length(rj.c.raw))
+            .order_by(rj.c.id.desc()).limit(10_000)).all()
     known = [(r.device, obs_identity(r.seq, r.time)) if r.kind == "obs"
              else (r.topic, (r.kind, r.time, r.digest)) for r in rows]
     return Resume(next_ids={"messages": max_id + 1,
                             "beds": max((b[0] for b in beds), default=0) + 1},
-                  beds=beds, messages=known)
+                  beds=beds, messages=known,
+                  retained_rejects=[(r.topic, raw_digest(r.raw)) for r in rejects])
 
 
 #: tables whose rows the core hands over as tuples, and their column order

@@ -94,8 +94,15 @@ def _start(url: str, db_url: str, tmp_path, name: str) -> RunningService:
     wait_until(lambda: svc.rows("SELECT count(*) FROM messages") != [] or not svc.alive(), 30,
                "the service created its tables")
     assert svc.alive(), log.read_text()
-    svc.next_valid_is_stored()
-    return svc
+    # until it has subscribed, what is published is not kept for it: knock until it answers
+    deadline = time.monotonic() + 30
+    while True:
+        try:
+            svc.next_valid_is_stored()
+            return svc
+        except AssertionError:
+            if time.monotonic() > deadline or not svc.alive():
+                raise
 
 
 def _stop(svc: RunningService) -> str:
@@ -221,3 +228,50 @@ def test_fuzzed_payloads_never_stop_the_service(service, body, kind):
     raw_publish(service.url, [(f"{T}/{kind}", json.dumps(p).encode()) for p in payloads])
     service.next_valid_is_stored()
     assert service.alive(), service.log.read_text()[-3000:]
+
+
+# --------------------------------------------------------------------------- one early message
+
+def _tachycardia_recording(path, outlier: bool) -> None:
+    """bed-01 at HR 72 for 20 s, (one message dated 290 s ahead, inside the 300 s skew
+    limit,) then HR 190 for 40 s, every message on time. 190 /min is over the shipped high
+    limit of 140 /min with a 10 s condition delay (configs/rules.toml)."""
+    t0 = 1796112000.0                                   # 2026-12-01T08:00:00Z
+    lines, seq = [], 0
+    def add(t_meas: float, rx: float, hr: float) -> None:
+        nonlocal seq
+        seq += 1
+        lines.append({"rx": iso(rx), "topic": f"hemo/{UNIT}/bed-01/obs",
+                      "payload": obs("gw-sdu9-bed-01", seq, t_meas,
+                                     [{"param": "HR", "value": hr, "unit": "/min"}])})
+    for k in range(20):
+        add(t0 + k, t0 + k + 0.2, 72)
+    if outlier:
+        add(t0 + 20 + 290, t0 + 20.2, 72)
+    for k in range(21, 61):
+        add(t0 + k, t0 + k + 0.2, 190)
+    path.write_text("".join(json.dumps(x) + "\n" for x in lines))
+
+
+def _hr_high_raised_at(db_url: str) -> float | None:
+    e = create_engine(db_url)
+    with e.connect() as c:
+        r = c.execute(text("SELECT min(time) FROM alarm_events WHERE rule = 'HR_high' AND "
+                           "transition = 'raised'")).scalar()
+    e.dispose()
+    return r
+
+
+def test_one_message_dated_ahead_does_not_silence_the_alarms(tmp_path):
+    from hemostream.replay import replay_file
+    raised = {}
+    for outlier in (False, True):
+        rec = tmp_path / f"outlier-{outlier}.jsonl"
+        _tachycardia_recording(rec, outlier)
+        db = f"sqlite:///{tmp_path / f'outlier-{outlier}.db'}"
+        s = replay_file(rec, db)
+        assert s.late == 0, "messages on time after one early message are not late"
+        raised[outlier] = _hr_high_raised_at(db)
+    assert raised[False] is not None
+    assert raised[True] is not None, "HR 190 raised no alarm after one early timestamp"
+    assert raised[True] - raised[False] <= 1.0

@@ -62,7 +62,7 @@ class IngestConfig(BaseModel):
     #: a bed's clock (late handling, which value is current, the rules' time) follows the
     #: measurement times but never runs ahead of arrival by more than this: one message
     #: dated ahead (within max_clock_skew_s) cannot push it forward and hold back the rest
-    bed_clock_lead_s: Annotated[float, Field(ge=0)] = 5.0
+    bed_clock_lead_s: Annotated[float, Field(ge=0)] = 1.0
     #: per device, how many recent message identities are remembered to drop duplicates
     dedup_per_device: Annotated[int, Field(ge=16)] = 512
     plausible: dict[str, Bounds] = Field(

@@ -171,6 +171,12 @@ class _Bed:
         self.stored.clear()
 
 
+def raw_digest(raw: bytes | str) -> str:
+    """A short content digest of raw input (to know a retained reject when it comes again)."""
+    b = raw.encode("utf-8", "surrogateescape") if isinstance(raw, str) else bytes(raw)
+    return hashlib.sha1(b).hexdigest()[:16]
+
+
 def obs_identity(seq: int, t: float) -> int:
     """(seq, time) of an obs message as one exact integer: seq above, the time in whole
     microseconds below (2^52 us reach past the year 2100). An int takes about a third of the
@@ -223,8 +229,13 @@ class Processor:
                  publish: bool = True,
                  next_ids: dict[str, int] | None = None,
                  known_beds: Iterable[tuple[int, str, str]] = (),
-                 known_messages: Iterable[tuple[str, Any]] = ()) -> None:
+                 known_messages: Iterable[tuple[str, Any]] = (),
+                 known_retained_rejects: Iterable[tuple[str, str]] = ()) -> None:
         self.cfg = config or Config()
+        #: (topic, digest) of retained messages already stored as rejects: the broker sends
+        #: a retained message again on every subscribe, it is not stored again
+        self._retained_rejects: set[tuple[str, str]] = set(known_retained_rejects)
+        self._retained_key: tuple[str, str] | None = None
         self.rules = rules
         #: build the messages a live sink publishes (a replay into a database needs none)
         self.publish = publish
@@ -263,13 +274,28 @@ class Processor:
         out, self.out = self.out, Outputs()
         return out
 
-    def feed(self, topic: str, payload: bytes | str | dict, rx: datetime | float) -> None:
-        """Process one received message. Never raises for bad input: it becomes a reject."""
+    def feed(self, topic: str, payload: bytes | str | dict, rx: datetime | float, *,
+             retained: bool = False) -> None:
+        """Process one received message. Never raises for bad input: it becomes a reject.
+
+        ``retained``: the broker's retained copy of a message, which it sends again on every
+        subscribe; one already stored as a reject counts as a duplicate.
+        """
         rx_t = rx if isinstance(rx, float) else epoch(rx)
+        key = None
+        if retained and isinstance(payload, (bytes, str)):
+            key = (topic, raw_digest(payload))
+            if key in self._retained_rejects:
+                self.counters.duplicates += 1
+                self.out.duplicates += 1
+                return
+        self._retained_key = key
         try:
             self._feed(topic, payload, rx_t)
         except Reject as r:
             self._reject(r.category, r.reason, topic, payload, rx_t)
+        finally:
+            self._retained_key = None
 
     def reject_unreadable(self, topic: str, raw: bytes | str, rx: float | None,
                           reason: str, category: str = "unreadable") -> None:
@@ -605,6 +631,8 @@ class Processor:
         else:
             raw = bytes(payload)
         self.counters.reject(category)
+        if self._retained_key is not None and len(self._retained_rejects) < 100_000:
+            self._retained_rejects.add(self._retained_key)
         self.out.rejected.append({
             "rx": rx, "topic": topic[:512], "category": category, "reason": reason,
             "obs_index": obs_index, "device": device, "seq": seq,

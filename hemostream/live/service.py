@@ -29,11 +29,13 @@ from collections import deque
 from typing import Any, Callable
 
 from sqlalchemy import event
+from sqlalchemy.engine import make_url
 
 from ..core.config import Config
 from ..core.processor import Processor
-from ..core.wire import TOPIC_KINDS_IN
-from ..replay import make_rules
+from ..core.wire import encode, format_epoch, input_filters
+from ..core.wire import status_topic as instance_status_topic
+from ..pipeline import make_rules
 from ..store import StoreError, Writer, load_resume, open_engine, rows_of
 from .health import Health, log_line, status_payload
 from .transport import Incoming, Transport, TransportError
@@ -51,11 +53,12 @@ def subscription_filters(cfg: Config) -> list[str]:
     ['hemo/+/+/obs', 'hemo/+/+/admit']
     """
     units = [u.id for u in cfg.units] or ["+"]
-    return [f"hemo/{u}/+/{kind}" for u in units for kind in TOPIC_KINDS_IN]
+    return [f for u in units for f in input_filters(u)]
 
 
 def status_topic(cfg: Config) -> str:
-    return f"hemo/_svc/{cfg.instance}/status"
+    """This instance's status / health topic."""
+    return instance_status_topic(cfg.instance)
 
 
 def backoff(attempt: int, low: float, high: float, rnd: random.Random = random.Random()) -> float:
@@ -230,7 +233,8 @@ class Service:
         sqlite_synchronous(engine, b.sqlite_synchronous)
         resume = await asyncio.to_thread(load_resume, engine)
         self.proc = Processor(cfg, rules=self.rules, next_ids=resume.next_ids,
-                              known_beds=resume.beds, known_messages=resume.messages)
+                              known_beds=resume.beds, known_messages=resume.messages,
+                              known_retained_rejects=resume.retained_rejects)
         self.writer = Writer(engine, max_batches=16)
         self.inq: asyncio.Queue = asyncio.Queue(b.queue_size)
         log.info("hemostream %s: database %s, %d bed(s) and %d recent message identities "
@@ -332,7 +336,7 @@ class Service:
                     log.info("connected to the broker (%s session)",
                              "resumed" if session else "new")
                 self.outbox.retained[self.status_topic] = status_payload(
-                    self.cfg.instance, "online", self.clock(), since=_iso(self.health.started))
+                    self.cfg.instance, "online", self.clock(), since=format_epoch(self.health.started))
                 self.outbox.online()
                 self.ready.set()
                 async for m in self.t.messages():
@@ -373,7 +377,7 @@ class Service:
             if item is _STOP:
                 break
             if item is not _TICK:
-                proc.feed(item.topic, item.payload, item.rx)
+                proc.feed(item.topic, item.payload, item.rx, retained=item.retain)
                 batch.append(item)
             now = mono()
             if now >= next_tick:
@@ -460,8 +464,7 @@ class Service:
                          "retries": w.retries, "refused_messages": w.refused}
         self.last_health = d
         if self.t.connected:
-            self.t.publish(self.status_topic, json.dumps(d, separators=(",", ":")).encode(),
-                           1, False)
+            self.t.publish(self.status_topic, encode(d), 1, False)
         if self.log_health:
             log.info("%s", log_line(d))
         if self.on_health is not None:
@@ -469,14 +472,8 @@ class Service:
         return d
 
 
-def _iso(t: float) -> str:
-    from ..core.processor import iso
-    return iso(t)
-
-
 def _safe_url(url: str) -> str:
     """A database URL without its password, for the log."""
-    from sqlalchemy.engine import make_url
     try:
         return make_url(url).render_as_string(hide_password=True)
     except Exception:  # noqa: BLE001
