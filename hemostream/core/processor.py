@@ -34,6 +34,24 @@ def epoch(t: datetime) -> float:
     return d.days * 86400.0 + d.seconds + d.microseconds / 1e6
 
 
+def arrival_epoch(rx: Any) -> float | None:
+    """Epoch seconds of an arrival time given as epoch seconds or an aware datetime, or None
+    for anything else (naive datetimes, text, bools, NaN or infinite numbers).
+
+    >>> arrival_epoch(1), arrival_epoch(datetime(1970, 1, 1, 0, 1, tzinfo=timezone.utc))
+    (1.0, 60.0)
+    >>> arrival_epoch(datetime(1970, 1, 1)) is None, arrival_epoch("now") is None
+    (True, True)
+    """
+    if isinstance(rx, float):
+        return rx if math.isfinite(rx) else None
+    if isinstance(rx, int) and not isinstance(rx, bool):
+        return float(rx)
+    if isinstance(rx, datetime):
+        return epoch(rx) if rx.utcoffset() is not None else None
+    return None
+
+
 def iso(t: float) -> str:
     """RFC 3339 UTC text, millisecond precision, for epoch seconds."""
     return datetime.fromtimestamp(t, timezone.utc).isoformat(
@@ -261,8 +279,16 @@ class Processor:
         return out
 
     def feed(self, topic: str, payload: bytes | str | dict, rx: datetime | float) -> None:
-        """Process one received message. Never raises for bad input: it becomes a reject."""
-        rx_t = rx if isinstance(rx, float) else epoch(rx)
+        """Process one received message. Never raises for bad input: it becomes a reject.
+
+        ``rx`` is the arrival time: epoch seconds (int or float) or an aware datetime.
+        Anything else (a naive datetime, text, NaN) is a reject ``bad_arrival_time``."""
+        rx_t = arrival_epoch(rx)
+        if rx_t is None:
+            self._reject("bad_arrival_time",
+                         f"arrival time: expected epoch seconds or an aware datetime, "
+                         f"got {_short(rx)} ({type(rx).__name__})", topic, payload, None)
+            return
         try:
             self._feed(topic, payload, rx_t)
         except Reject as r:
