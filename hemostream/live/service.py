@@ -227,7 +227,7 @@ class Service:
         except StoreError as e:
             log.error("%s", e)
             return 1
-        sqlite_synchronous(engine, b.sqlite_synchronous)
+        sqlite_synchronous(engine, cfg.store.sqlite_synchronous)
         resume = await asyncio.to_thread(load_resume, engine)
         self.proc = Processor(cfg, rules=self.rules, next_ids=resume.next_ids,
                               known_beds=resume.beds, known_messages=resume.messages)
