@@ -34,7 +34,7 @@ from ..core.config import Config
 from ..core.processor import Processor
 from ..core.wire import TOPIC_KINDS_IN
 from ..replay import make_rules
-from ..store import StoreError, Writer, load_resume, open_engine, rows_of
+from ..store import StoreError, Writer, load_resume, open_engine, record_config, rows_of
 from .health import Health, log_line, status_payload
 from .transport import Incoming, Transport, TransportError
 
@@ -228,6 +228,7 @@ class Service:
             log.error("%s", e)
             return 1
         sqlite_synchronous(engine, cfg.store.sqlite_synchronous)
+        await asyncio.to_thread(record_config, engine, cfg)   # the configuration in force
         resume = await asyncio.to_thread(load_resume, engine)
         self.proc = Processor(cfg, rules=self.rules, next_ids=resume.next_ids,
                               known_beds=resume.beds, known_messages=resume.messages)
