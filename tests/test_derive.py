@@ -84,7 +84,7 @@ def test_measured_map_is_not_recalculated_but_used():
     names = {d.param for d in out}
     assert "MAP" not in names and eff["MAP"].value == 95
     svr = next(d for d in out if d.param == "SVR")
-    # [marino-icu] SVR = (MAP - CVP) / CO in dyn.s.cm-5, the factor from pint
+    # [marino2014] SVR = (MAP - CVP) / CO in dyn.s.cm-5, the factor from pint
     assert svr.value == pytest.approx(K_RES * 90 / 6.0, rel=1e-9)
     assert math.isclose(next(d for d in out if d.param == "SV").value, 100.0)
 

@@ -47,7 +47,8 @@ def test_handmade_recording(handmade, db_url):
 
     # bed-A1: arterial line, CVP in cm[H2O], continuous CO; Mosteller BSA from 170 cm, 70 kg
     d = first_derived(engine, "bed-A1")
-    bsa = math.sqrt(170 * 70 / 3600)                               # Mosteller 1987
+    bsa = math.sqrt(170 * 70 / 3600)               # [mosteller1987], the published formula
+    assert round(bsa, 2) == 1.82                   # BSA tables for 170 cm, 70 kg (from memory)
     cvp = mmhg(10.0, "cmH2O")
     map_ = 80 + (120 - 80) / 3                                     # common practice
     assert d["BSA"]["value"] == pytest.approx(bsa, rel=1e-9)
@@ -76,7 +77,7 @@ def test_handmade_recording(handmade, db_url):
 
     # bed-A3: measured mean, PA catheter with wedge, thermodilution CO in mL/min
     d = first_derived(engine, "bed-A3")
-    co, hr, bsa = 4.8, 75, math.sqrt(180 * 80 / 3600)
+    co, hr, bsa = 4.8, 75, 2.00      # [mosteller1987] worked example: 180 cm, 80 kg -> 2.00 m2
     pam = mmhg(3.0, "kPa")
     sv = co * 1000 / hr
     svi = sv / bsa
