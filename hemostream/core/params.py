@@ -14,7 +14,7 @@ Maximum ages: continuous channels seconds, intermittent ones (cuff, wedge, therm
 CO) minutes (common practice).
 
 >>> PARAMS["NIBP_SYS"].canonical_unit, PARAMS["NIBP_SYS"].max_age_s, PARAMS["NIBP_SYS"].channel
-('mm[Hg]', 900.0, 'NIBP')
+('mm[Hg]', 900, 'NIBP')
 """
 
 from __future__ import annotations
