@@ -8,13 +8,15 @@ needs the wall clock), so a recording replays to identical results.
 
 The pieces it uses live beside it: :mod:`.outputs` (rows and publications), :mod:`.rejects`
 (reject rows and their reasons), :mod:`.dedup` (duplicate detection), :mod:`.beds` (per-bed
-state), :mod:`.times` (epoch seconds and RFC 3339). Their public names are re-exported here.
+state); times are :mod:`.wire`'s. Their public names are re-exported here.
 """
 
 from __future__ import annotations
 
 import hashlib
 import json
+import math
+from datetime import datetime, timezone  # noqa: F401  (timezone: doctest)
 from typing import Any, Iterable
 
 from pydantic import ValidationError
@@ -26,9 +28,9 @@ from .outputs import (OBSERVATION_COLUMNS, Counters, Outputs,  # noqa: F401  (re
                       inputs_json)
 from .rejects import (RecordingLineBytes, Reject, category_of,  # noqa: F401
                       format_validation_error, reject_row, short)
-from .times import arrival_epoch, epoch, iso  # noqa: F401  (re-exported)
 from .derive import DERIVED_UNITS, Current, derive_all, bsa_dubois, bsa_mosteller
 from .units import BY_DIMENSION, CANONICAL, UNITS
+from .wire import epoch, format_epoch as iso  # noqa: F401  (re-exported)
 from .wire import (PARAMS, PAYLOAD_MODELS, TOPIC_KINDS_OUT, AdmitMessage, CommandMessage,
                    NoteMessage, ObsMessage, TopicError, parse_topic)
 
@@ -40,6 +42,24 @@ EFFECTIVE_SOURCES = {
     "HR": frozenset({"HR", "PR"}), "SV": frozenset({"SV", "HR", "PR", "CO"}),
     "CO": frozenset({"CO", "HR", "PR", "SV"}),
 }
+
+def arrival_epoch(rx: Any) -> float | None:
+    """Epoch seconds of an arrival time given as epoch seconds or an aware datetime, or None
+    for anything else (naive datetimes, text, bools, NaN or infinite numbers).
+
+    >>> arrival_epoch(1), arrival_epoch(datetime(1970, 1, 1, 0, 1, tzinfo=timezone.utc))
+    (1.0, 60.0)
+    >>> arrival_epoch(datetime(1970, 1, 1)) is None, arrival_epoch("now") is None
+    (True, True)
+    """
+    if isinstance(rx, float):
+        return rx if math.isfinite(rx) else None
+    if isinstance(rx, int) and not isinstance(rx, bool):
+        return float(rx)
+    if isinstance(rx, datetime):
+        return epoch(rx) if rx.utcoffset() is not None else None
+    return None
+
 
 class Processor:
     """Wire format in, rows and published messages out. Not thread-safe; one per worker."""

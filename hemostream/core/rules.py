@@ -894,7 +894,7 @@ class RulesEngine:
     def classify(self, levels: dict[str, float | None]) -> str | None:
         """Profile read-out from levels of CVP, PAWP, CI and SVR (None where absent).
 
-        Common practice (critical care teaching; /work/shared/references.md): hypovolemic
+        Common practice (critical care teaching; docs/sources.md): hypovolemic
         (low filling pressures, low CI, high SVR), cardiogenic (high PAWP, low CI, high SVR),
         obstructive (high CVP with PAWP not high, low CI, high SVR), distributive (low SVR,
         CI normal or high). Without PAWP a high CVP with low CI and high SVR cannot tell

@@ -438,7 +438,7 @@ class FluidChallengeConfig(BaseModel):
 
 
 def _default_profile_ranges() -> dict[str, Span]:
-    # Typical adult ranges, critical care texts (from memory; /work/shared/references.md)
+    # Typical adult ranges, critical care texts (from memory; docs/sources.md [marino2014])
     return {"CVP": Span(low=2, high=8), "PAWP": Span(low=6, high=12),
             "CI": Span(low=2.5, high=4.0), "SVR": Span(low=800, high=1200)}
 
