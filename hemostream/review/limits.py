@@ -20,6 +20,7 @@ from typing import Any
 from pydantic import ValidationError
 
 from ..core.config import Config
+from ..core.rules.limits import applied_limits, limit_overrides
 from ..store import canonical_config
 
 
@@ -101,9 +102,9 @@ def limit_lines(cfg: Config, admissions: list[dict[str, Any]], params: tuple[str
             steps: list[tuple[float, float, float]] = []
             overridden = False
             for a, b in segs:
-                ov = override_at(a).get(p, {})
-                thr = ov.get(side, getattr(rule, side) if rule is not None else None)
-                if side in ov:
+                raw = override_at(a)        # the one merge rule, as the rules engine applies it
+                thr = applied_limits(cfg.rules.limits, raw).get(p, {}).get(side)
+                if side in limit_overrides(raw).get(p, {}):
                     overridden = True
                 if thr is None:
                     continue
