@@ -97,7 +97,6 @@ def limit_lines(cfg: Config, admissions: list[dict[str, Any]], params: tuple[str
 
     out = []
     for p in params:
-        rule = cfg.rules.limits.get(p)
         for side in ("low", "high"):
             steps: list[tuple[float, float, float]] = []
             overridden = False
