@@ -283,6 +283,7 @@ def map_message(raw: bytes | str, cfg: Hl7Config, terms: Terms | None = None) ->
         value = a.field(seg, 5).strip()
         if not vtype and not value:
             mapped.skipped_structure += 1      # an MDS/VMD/channel row of the containment tree
+            n_obx -= 1
             continue
         device = a.comp_n(seg, 18, 1) or a.comp_n(seg, 18, 3) or msh_device
         r = _obx(a, seg, where, vtype, value, terms, cfg, test, obr7 or sent_dt, off)
@@ -296,7 +297,7 @@ def map_message(raw: bytes | str, cfg: Hl7Config, terms: Terms | None = None) ->
             continue
         groups.setdefault(device, []).append((r, setid))
     if n_obx == 0:
-        raise Hl7Error("AE", "missing_field", "no OBX segment: nothing to store")
+        raise Hl7Error("AE", "missing_field", "no OBX segment with a value: nothing to store")
     seq = control_id_to_seq(control_id)
     for device, items in groups.items():
         obs = [o for o, _ in items]
