@@ -115,3 +115,21 @@ def test_writer_uses_the_location_map_and_mdc_terms():
     assert json.loads(json.dumps(payload))["obs"][1] == {
         "param": "CVP", "value": 11.5, "unit": "cm[H2O]", "status": "questionable",
         "time": "2026-12-01T08:15:00.250000Z"}
+
+
+def test_simulated_ward_published_over_mllp(tmp_path):
+    """``simulate --publish-hl7``: the ward stream as PCD-01 over MLLP into a listener."""
+    from hemostream.intake.hl7.mllp import send_messages
+    from test_hl7_mllp import count, run_server
+
+    lines = _obs_only(generate("stable", beds=2, duration_s=30, seed=5))
+    hcfg = Hl7Config(locations_from_components=True)
+    msgs = list(pcd01_stream(lines, hcfg))
+    db = tmp_path / "s.db"
+
+    async def body(port):
+        return await send_messages("127.0.0.1", port, msgs)
+
+    assert run_server(f"sqlite:///{db}", hcfg, body) == {"AA": len(msgs)}
+    n_obs = sum(len(line["payload"]["obs"]) for line in lines)
+    assert count(db, "SELECT count(*) FROM observations") == [(n_obs,)]

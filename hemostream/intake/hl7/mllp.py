@@ -318,6 +318,46 @@ async def serve(db_url: str, host: str, port: int, *, config: Config | None = No
     return intake
 
 
+async def send_messages(host: str, port: int, messages: Any, *,
+                        ssl: _ssl.SSLContext | None = None, ack_timeout_s: float = 30.0,
+                        retries: int = 5, speed_delay: Callable[[int], float] | None = None
+                        ) -> dict[str, int]:
+    """Send HL7 messages (texts) over MLLP one at a time, each waiting for its ACK; on a lost
+    connection or a missing ACK the message is sent again (at-least-once, as a gateway does;
+    the listener drops the repeat as a duplicate). Returns the count of each MSA-1 code.
+    For ``simulate --publish-hl7 HOST:PORT``."""
+    from hl7.mllp import open_hl7_connection
+    import hl7 as _hl7
+    counts: dict[str, int] = {}
+    reader = writer = None
+    for i, text in enumerate(messages):
+        if speed_delay is not None:
+            d = speed_delay(i)
+            if d > 0:
+                await asyncio.sleep(d)
+        for attempt in range(retries + 1):
+            try:
+                if writer is None:
+                    reader, writer = await open_hl7_connection(host, port, ssl=ssl)
+                writer.writeblock(text.encode("utf-8"))
+                await writer.drain()
+                ack = await asyncio.wait_for(reader.readblock(), ack_timeout_s)
+                code = str(_hl7.parse(ack.decode("utf-8", "replace")).segment("MSA")(1))
+                counts[code] = counts.get(code, 0) + 1
+                break
+            except (OSError, asyncio.IncompleteReadError, asyncio.TimeoutError) as e:
+                if writer is not None:
+                    writer.close()
+                reader = writer = None
+                if attempt == retries:
+                    raise ConnectionError(f"HL7 message {i + 1}: no ACK after "
+                                          f"{retries + 1} attempts ({e})") from None
+                await asyncio.sleep(min(0.2 * 2 ** attempt, 5.0))
+    if writer is not None:
+        writer.close()
+    return counts
+
+
 def main(argv: list[str] | None = None) -> int:
     """``python -m hemostream.intake.hl7.mllp --db URL --listen HOST:PORT [--config FILE]``"""
     from .config import load_config
