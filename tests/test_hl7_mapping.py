@@ -277,3 +277,22 @@ def test_table_rows_are_consistent():
     for u in UNITS:
         assert terms.for_unit(u, "HR").maps_to == u
     assert terms.for_unit("/min", "RR").ref_id == "MDC_DIM_RESP_PER_MIN"
+
+
+def test_docs_example_and_table_match_the_code():
+    """docs/hl7.md: the example message maps as the page says; its table is mdc.csv."""
+    from pathlib import Path
+    doc = (Path(__file__).resolve().parent.parent / "docs" / "hl7.md").read_text()
+    block = doc.split("## An example message", 1)[1].split("```", 2)[1].strip()
+    proc = Processor()
+    cfg = Hl7Config(locations={"NW3^R12^B1": {"unit": "NW3", "bed": "bed-01"}})
+    oc = feed_hl7(proc, block.replace("\n", "\r").encode(), T0_EPOCH + 2, cfg)
+    assert (oc.code, oc.text) == ("AA", "4 observation(s) stored")
+    out = proc.drain()
+    vals = {r[2]: r[4] for r in out.observations}
+    assert round(vals["ABP_DIA"], 1) == 66.0 and round(vals["CVP"], 2) == 9.56
+    assert round({d["param"]: d["value"] for d in out.derived}["MAP"], 1) == 83.3
+    for t in load_terms().rows:
+        row = (f"| {t.kind} | {t.code} | `{t.ref_id}` | `{t.maps_to}` | {t.writer} | "
+               f"{t.checked} |").replace("|  |", "|  |")
+        assert row in doc, row
