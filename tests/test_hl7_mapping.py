@@ -296,3 +296,14 @@ def test_docs_example_and_table_match_the_code():
         row = (f"| {t.kind} | {t.code} | `{t.ref_id}` | `{t.maps_to}` | {t.writer} | "
                f"{t.checked} |").replace("|  |", "|  |")
         assert row in doc, row
+
+
+def test_oversized_message_rejected_without_parsing():
+    cfg = CFG.model_copy(update={"max_message_bytes": 1024})
+    big = oru([nm(i, "147842^MDC_ECG_HEART_RATE^MDC", "70", BPM) for i in range(2, 30)])
+    proc = Processor()
+    oc = feed_hl7(proc, big.encode(), T0_EPOCH + 2, cfg)
+    assert (oc.code, oc.category) == ("AR", "too_large")
+    assert f"message is {len(big)} bytes; the limit is 1024 bytes" in oc.text
+    (row,) = proc.drain().rejected
+    assert b"NW-884213" not in row["raw"] and row["raw"].startswith(b"MSH|")

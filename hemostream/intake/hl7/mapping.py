@@ -410,8 +410,7 @@ def feed_hl7(proc: Processor, raw: bytes | str, rx: float, cfg: Hl7Config, *,
     if size > cfg.max_message_bytes:
         reason = (f"message is {size} bytes; the limit is {cfg.max_message_bytes} bytes "
                   "([intake.hl7] max_message_bytes; not parsed)")
-        head = raw[:4096] if isinstance(raw, bytes) else raw[:4096].encode("utf-8", "replace")
-        proc.reject_unreadable(f"hl7/{source}", b"" if not cfg.store_patient_ids else head,
+        proc.reject_unreadable(f"hl7/{source}", _raw_for_store(normalise(raw[:4096]), cfg),
                                rx, reason, "too_large")
         return Outcome("AR", reason, "too_large")
     text = normalise(raw)

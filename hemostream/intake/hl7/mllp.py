@@ -133,6 +133,11 @@ class MllpServer:
             pass
         except asyncio.CancelledError:
             pass
+        except StoreFailed as e:
+            log.error("HL7: closing the connection from %s without an ACK: %s", peer, e)
+        except Exception as e:  # noqa: BLE001 - one connection must not end the listener
+            log.error("HL7: internal error on the connection from %s (no ACK sent): %s: %s",
+                      peer, e.__class__.__name__, e)
         finally:
             self.connections -= 1
             self._tasks.discard(task)
@@ -307,14 +312,21 @@ async def serve(db_url: str, host: str, port: int, *, config: Config | None = No
             except asyncio.TimeoutError:
                 pass
             intake.check()
+            if writer.error is not None:
+                log.error("database writes failed, stopping (nothing unstored was "
+                          "acknowledged): %s", writer.error)
+                break
             proc.tick(time.time())
             if proc.out.row_count():       # time-driven rows (silent feeds ...)
                 await intake.flush()
     finally:
         await server.close()
-        await intake.flush()
-        await asyncio.to_thread(writer.close)
-        engine.dispose()
+        try:
+            if writer.error is None:
+                await intake.flush()
+            await asyncio.to_thread(writer.close)
+        finally:
+            engine.dispose()
     return intake
 
 
@@ -396,7 +408,11 @@ def main(argv: list[str] | None = None) -> int:
         await serve(args.db, host, port, config=cfg, hl7_config=hcfg, ssl=ctx, stop=stop,
                     on_ready=ready)
 
-    asyncio.run(run())
+    try:
+        asyncio.run(run())
+    except Exception as e:  # noqa: BLE001 - StoreError and the like: say it, exit 1
+        log.error("%s: %s", e.__class__.__name__, e)
+        return 1
     return 0
 
 
