@@ -133,3 +133,35 @@ def test_simulated_ward_published_over_mllp(tmp_path):
     assert run_server(f"sqlite:///{db}", hcfg, body) == {"AA": len(msgs)}
     n_obs = sum(len(line["payload"]["obs"]) for line in lines)
     assert count(db, "SELECT count(*) FROM observations") == [(n_obs,)]
+
+
+def test_cli_pieces_replay_write_publish(tmp_path, capsys):
+    """The functions the hemostream commands call: replay FILE.hl7, simulate --format hl7,
+    simulate --publish-hl7."""
+    from hemostream.intake.hl7 import cli
+    from test_hl7_mllp import count, run_server
+
+    lines = _obs_only(generate("stable", beds=1, duration_s=20, seed=2))
+    out = tmp_path / "sim.hl7"
+    assert cli.write_command(lines, str(out)) == len(lines)
+    assert cli.looks_like_hl7(out) and not cli.looks_like_hl7(__file__)
+    conf = tmp_path / "c.toml"
+    conf.write_text("[intake.hl7]\nlocations_from_components = true\n")
+    db = tmp_path / "r.db"
+    assert cli.replay_command(out, f"sqlite:///{db}", str(conf)) == 0
+    text = capsys.readouterr().out
+    assert f"AA {len(lines)}  AE 0  AR 0" in text
+    n_obs = sum(len(line["payload"]["obs"]) for line in lines)
+    assert count(db, "SELECT count(*) FROM observations") == [(n_obs,)]
+    conf.write_text("[intake.hl7]\nno_such_key = 1\n")
+    assert cli.replay_command(out, f"sqlite:///{db}", str(conf)) == 2
+
+    db2 = tmp_path / "p.db"
+
+    async def body(port):
+        import asyncio
+        return await asyncio.to_thread(cli.publisher, iter(lines), f"127.0.0.1:{port}", 0)
+
+    assert run_server(f"sqlite:///{db2}", Hl7Config(locations_from_components=True),
+                      body) == 0
+    assert count(db2, "SELECT count(*) FROM observations") == [(n_obs,)]
