@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import sys
 import tomllib
 from pathlib import Path
 
@@ -57,8 +58,6 @@ def load_for_command(path: str | Path | None, *, shipped_default: bool = False) 
     """A command's configuration: the named file, else the shipped ``configs/default.toml``
     (``shipped_default``) or the built-in defaults. An invalid file ends the command with
     every problem listed on stderr and exit status 2."""
-    import sys
-
     try:
         if path is None and shipped_default and DEFAULT_CONFIG.is_file():
             path = DEFAULT_CONFIG

@@ -5,12 +5,15 @@ from __future__ import annotations
 import csv
 import json
 import sys
-from datetime import datetime
 from typing import IO, Any, Iterator
 
+from rich import box
+from rich.console import Console
+from rich.table import Table
 from sqlalchemy import select
 
-from .core.processor import epoch, iso
+from .core.wire import format_epoch as iso
+from .core.wire import parse_time
 from .store import TABLES
 
 KINDS = ("observations", "derived", "rejected", "notes", "alarms", "admissions", "commands")
@@ -29,10 +32,7 @@ _COLUMNS: dict[str, tuple[str, ...]] = {
 
 
 def parse_since(text: str) -> float:
-    t = datetime.fromisoformat(text)
-    if t.tzinfo is None:
-        raise ValueError(f"--since {text!r}: give a UTC offset, e.g. 2026-12-01T08:00:00Z")
-    return epoch(t)
+    return parse_time(text, "--since")
 
 
 def rows(engine, kind: str, bed: str | None = None, param: str | None = None,
@@ -118,8 +118,6 @@ def write(rows_iter, fmt: str, stream: IO[str] = sys.stdout, console=None,
                         for k, v in r.items()})
             n += 1
         return n
-    from rich.console import Console
-    from rich.table import Table
 
     console = console or Console()
     table = None
@@ -133,7 +131,6 @@ def write(rows_iter, fmt: str, stream: IO[str] = sys.stdout, console=None,
             if isinstance(r.get(tk), str) and len(r[tk]) >= 19:
                 r[tk] = r[tk][5:10] + " " + r[tk][11:19]
         if table is None:
-            from rich import box
             table = Table(*r.keys(), box=box.SIMPLE_HEAD, pad_edge=False,
                           caption="times UTC", caption_justify="left")
             for c in table.columns[:-1]:

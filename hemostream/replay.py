@@ -5,15 +5,15 @@ from __future__ import annotations
 import json
 import time as _time
 from dataclasses import dataclass, fields
-from datetime import datetime
 from pathlib import Path
 from typing import Any, Callable
 
 from pydantic import BaseModel, ConfigDict, StrictStr, ValidationError
 
 from .core.config import Config
-from .core.processor import Counters, Processor, RecordingLineBytes, epoch
-from .core.wire import ObsMessage, Time
+from .core.processor import Counters, Processor, RecordingLineBytes
+from .core.wire import ObsMessage, Time, epoch, parse_time
+from .pipeline import make_rules
 from .store import Writer, load_resume, open_engine, rows_of
 
 
@@ -43,12 +43,7 @@ class ReplaySummary(Counters):
 
 
 def _parse_rx(v: Any) -> float:
-    if not isinstance(v, str):
-        raise ValueError("'rx' must be an RFC 3339 timestamp string")
-    t = datetime.fromisoformat(v)
-    if t.tzinfo is None:
-        raise ValueError(f"'rx' {v!r} has no UTC offset")
-    return epoch(t)
+    return parse_time(v, "'rx'")
 
 
 class _ObsLine(BaseModel):
@@ -174,11 +169,3 @@ def replay_file(path: str | Path, db_url: str | None = None, config: Config | No
     summary.rejected = dict(sorted(summary.rejected.items()))
     summary.seconds = _time.perf_counter() - t0
     return summary
-
-
-def make_rules(cfg: Config) -> Any:
-    """The rules engine for ``cfg`` (None when ``[rules] enabled = false``)."""
-    if not cfg.rules.enabled:
-        return None
-    from .core.rules import RulesEngine
-    return RulesEngine(cfg.rules)

@@ -18,7 +18,7 @@ from typing import Any
 import numpy as np
 
 from hemostream.core.units import UNITS
-from hemostream.core.wire import PARAMS
+from hemostream.core.wire import PARAMS, topic
 
 from .scenario import Monitoring
 
@@ -98,7 +98,7 @@ class Gateway:
                  artifacts: list[Artifact], rng: np.random.Generator, noise: float,
                  duration_s: int, measures: list[tuple[int, str]]) -> None:
         self.mon = monitoring
-        self.topic = f"hemo/{unit}/{bed}/obs"
+        self.topic = topic(unit, bed, "obs")
         self.device = monitoring.device or f"bgw-{unit.lower()}-{index + 1:02d}"
         self.rng = rng
         self.noise = noise

@@ -21,7 +21,7 @@ import sys
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
 
-from hemostream.core.wire import format_time
+from hemostream.core.wire import format_time, topic
 
 UNIT = "SDU4"
 START = datetime(2026, 12, 1, 8, 0, 0, tzinfo=timezone.utc)
@@ -43,14 +43,14 @@ def lines(seconds: int = 600, seed: int = 4) -> list[str]:
 
     admits = {"bed-01": (176, 82.0), "bed-02": (163, 58.5), "bed-03": (181, 95.0)}
     for bed, (h, w) in admits.items():
-        emit(START - timedelta(minutes=5), f"hemo/{UNIT}/{bed}/admit",
+        emit(START - timedelta(minutes=5), topic(UNIT, bed, "admit"),
              {"v": 1, "time": format_time(START - timedelta(minutes=5)), "height_cm": h,
               "weight_kg": w})
     seqs = {"gw-a41": 1000, "gw-a42": 52, "gw-a43": 7}
 
     def obs(t, bed, device, items):
         seqs[device] += 1
-        emit(t, f"hemo/{UNIT}/{bed}/obs",
+        emit(t, topic(UNIT, bed, "obs"),
              {"v": 1, "device": device, "seq": seqs[device], "time": format_time(t),
               "obs": items})
 
@@ -103,19 +103,19 @@ def lines(seconds: int = 600, seed: int = 4) -> list[str]:
                           "time": format_time(t - timedelta(seconds=40))})
         obs(t, "bed-03", "gw-a43", items)
         if s == 359:
-            emit(t, f"hemo/{UNIT}/bed-03/note",
+            emit(t, topic(UNIT, "bed-03", "note"),
                  {"v": 1, "time": format_time(t), "kind": "line_flush", "param": "ABP_SYS",
                   "by": "RN K. Ostrava"})
     # broken input, as a real feed sometimes carries
     t = START + timedelta(seconds=200)
-    emit(t, f"hemo/{UNIT}/bed-01/obs", "{\"v\": 1, \"device\": \"gw-a41\", \"seq\": 9")
-    emit(t, f"hemo/{UNIT}/bed-02/obs",
+    emit(t, topic(UNIT, "bed-01", "obs"), "{\"v\": 1, \"device\": \"gw-a41\", \"seq\": 9")
+    emit(t, topic(UNIT, "bed-02", "obs"),
          {"v": 1, "device": "gw-a42", "seq": 9001, "time": format_time(t),
           "obs": [{"param": "NIBP_SYS", "value": 118, "unit": "mmHg"}]})
-    emit(t, f"hemo/{UNIT}/bed 9/obs", {"v": 1})
-    emit(t, f"hemo/{UNIT}/bed-03/obs",
+    emit(t, topic(UNIT, "bed 9", "obs"), {"v": 1})
+    emit(t, topic(UNIT, "bed-03", "obs"),
          {"v": 2, "device": "gw-a43", "seq": 9002, "time": format_time(t), "obs": []})
-    emit(t, f"hemo/{UNIT}/bed-01/obs",
+    emit(t, topic(UNIT, "bed-01", "obs"),
          {"v": 1, "device": "gw-a41", "seq": 9003, "time": format_time(t),
           "obs": [{"param": "HR", "value": 900, "unit": "/min"}]})
     out.sort(key=lambda x: x[0])

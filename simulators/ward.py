@@ -19,7 +19,7 @@ from typing import IO, Any, Callable, Iterable, Iterator
 
 import numpy as np
 
-from hemostream.core.wire import format_time
+from hemostream.core.wire import format_time, topic
 
 from .gateway import CHANNEL_NOTE_PARAM, CMH2O_TO_MMHG, Artifact, Gateway, Vitals
 from .model import Circulation
@@ -93,8 +93,8 @@ class WardBed:
                                monitoring=plan.monitoring, artifacts=artifacts,
                                rng=r_gateway, noise=plan.artifacts.noise,
                                duration_s=duration_s, measures=measures)
-        self.topic_note = f"hemo/{unit}/{plan.id}/note"
-        self.topic_admit = f"hemo/{unit}/{plan.id}/admit"
+        self.topic_note = topic(unit, plan.id, "note")
+        self.topic_admit = topic(unit, plan.id, "admit")
         self._wander = np.zeros(2)
         self._wander_block = np.zeros((0, 2))
         self._wander_row = 0

@@ -146,3 +146,42 @@ def test_keys_without_operator_or_alarm_send_nothing():
     alarm(v, "bed-01", T0, "x", "low_output", "medium")
     s, cmd = handle_key(UIState(), "a", v, operator=None)
     assert cmd is None and "operator" in s.message
+
+
+def test_the_demo_dashboard_uses_the_configured_maximum_ages(tmp_path):
+    """``[derive] max_age_s`` says when a value is too old to show as current; the demo's
+    dashboard used the built-in ages whatever the configuration said (``watch`` did not)."""
+    from hemostream.app.demo import demo_dashboard
+    from hemostream.app.watch import unit_view
+    from hemostream.core.config import Config, DeriveConfig
+    from hemostream.live.inproc import InprocBroker
+    from hemostream.live.service import Service
+
+    cfg = Config(derive=DeriveConfig(max_age_s={"CVP": 5.0}))
+    svc = Service(cfg, InprocBroker().client("hs-demo-test"),
+                  db_url=f"sqlite:///{tmp_path / 'd.db'}")
+    demo = demo_dashboard(svc, lambda: T0 + 10, None, "test", None, None, None,
+                          console=Console(width=120, height=40, record=True))
+    feed_bed(demo.model, "bed-01", T0)            # CVP measured at T0, shown at T0 + 10 s
+    watch = unit_view(cfg)
+    feed_bed(watch, "bed-01", T0)
+    for view in (demo.model, watch):
+        r, stale = view.bed("SDU7/bed-01").reading("CVP", T0 + 10)
+        assert r.value == 8 and stale, "10 s old, configured maximum 5 s"
+        r, stale = view.bed("SDU7/bed-01").reading("HR", T0 + 5)
+        assert not stale                          # built-in 10 s where nothing is configured
+    plain = UnitView()                            # the built-in 30 s for CVP: still current
+    feed_bed(plain, "bed-01", T0)
+    assert not plain.bed("SDU7/bed-01").reading("CVP", T0 + 10)[1]
+
+
+def test_a_time_without_an_offset_is_not_guessed():
+    """docs/wire-format.md: times are RFC 3339 with an explicit offset. A published message
+    whose time has none is ignored (it was read as the viewer's local time before)."""
+    v = UnitView()
+    v.apply("hemo/SDU7/bed-01/derived", {"v": 1, "time": "2026-12-01T08:00:00",
+                                         "values": {"SI": 0.7}})
+    assert v.bed("SDU7/bed-01").values == {}
+    v.apply("hemo/SDU7/bed-01/derived", {"v": 1, "time": "2026-12-01T09:00:00+01:00",
+                                         "values": {"SI": 0.7}})
+    assert v.bed("SDU7/bed-01").values["SI"].time == T0     # 09:00+01:00 is 08:00Z

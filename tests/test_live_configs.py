@@ -6,6 +6,9 @@ from __future__ import annotations
 
 import asyncio
 import getpass
+import shutil
+import tempfile
+import os
 import re
 import subprocess
 import time
@@ -61,14 +64,40 @@ def test_dev_config(tmp_path):
     port, = free_ports(1)
     text = (SHIPPED / "dev.conf").read_text()
     text = text.replace("listener 1883 127.0.0.1", f"listener {port} 127.0.0.1")
+    shipped = re.search(r"^persistence_location (\S+)$", text, re.M).group(1)
+    # a directory the broker's user can reach (pytest's own tmp root is private to root)
+    data = Path(tempfile.mkdtemp(prefix="hs-dev-broker-", dir="/tmp"))
+    os.chmod(data, 0o755)
+    if os.geteuid() == 0:
+        # started as root, Mosquitto runs as the user "mosquitto": the shipped directory must
+        # be that user's (the Debian package's), and so is the stand-in here
+        import pwd
+        owner = pwd.getpwnam("mosquitto")
+        if Path(shipped).is_dir():
+            assert Path(shipped).stat().st_uid == owner.pw_uid, shipped
+        os.chown(data, owner.pw_uid, owner.pw_gid)
+    text = text.replace(f"persistence_location {shipped}", f"persistence_location {data}/")
     conf = tmp_path / "dev.conf"
-    conf.write_text(f"user {getpass.getuser()}\n" + text)
+    conf.write_text(text)                                # as started: no "user" line added
     p = _start(conf, port, tmp_path)
     try:
         _try(BrokerConfig(url=f"mqtt://127.0.0.1:{port}", client_id="dev-check"))
     finally:
         _stop(p)
-    assert (tmp_path / "mosquitto.db").exists()          # persistence where it was started
+    try:
+        assert (data / "mosquitto.db").exists()          # the session survives a restart
+    finally:
+        shutil.rmtree(data, ignore_errors=True)
+
+
+def test_one_packet_limit():
+    """The broker's packet limit is hemostream's: nothing the broker accepts is too large for
+    the service (the service advertises its limit in CONNECT; the broker drops, silently,
+    what exceeds it)."""
+    want = BrokerConfig().max_packet_bytes
+    for name in ("dev.conf", "secure.conf"):
+        found = re.findall(r"^max_packet_size (\d+)$", (SHIPPED / name).read_text(), re.M)
+        assert found == [str(want)], name
 
 
 def test_secure_config_with_the_shipped_acl(tmp_path, monkeypatch):
@@ -126,5 +155,31 @@ def test_secure_config_with_the_shipped_acl(tmp_path, monkeypatch):
             return got
 
         assert asyncio.run(acl()) == ["hemo/SDU4/bed-01/obs"]
+
+        async def takeover() -> list[bytes]:
+            # a gateway that knows the service's client id connects with it: its id is its
+            # user name (use_username_as_clientid), so the service's session stays up
+            svc = MqttTransport(BrokerConfig(url=url, client_id="hemostream-sdu4",
+                                             username="hemostream", password_env="T_S",
+                                             ca_file=ca), persistent=False)
+            gw = MqttTransport(BrokerConfig(url=url, client_id="hemostream-sdu4",
+                                            username="gw-sdu4-bed-01", password_env="T_G",
+                                            ca_file=ca), persistent=False)
+            await svc.connect()
+            await svc.subscribe(["hemo/SDU4/+/obs"], 1)
+            await gw.connect()
+            await asyncio.sleep(0.5)
+            await gw.publish_wait("hemo/SDU4/bed-01/obs", b"after", 1)
+            got = []
+            async def read():
+                async for m in svc.messages():
+                    got.append(m.payload)
+                    return
+            await asyncio.wait_for(read(), 5)
+            await gw.disconnect()
+            await svc.disconnect()
+            return got
+
+        assert asyncio.run(takeover()) == [b"after"]
     finally:
         _stop(p)

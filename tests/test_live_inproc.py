@@ -130,7 +130,11 @@ def test_restart_with_the_persistent_session_gets_what_was_sent_meanwhile(tmp_pa
         for ln in part:
             broker.publish(ln["topic"], payload_bytes(ln["payload"]))
             await asyncio.sleep(0)
-        await asyncio.sleep(0.2)
+        # everything the session holds (sent now, or kept while hemostream was down) has been
+        # delivered, stored and acknowledged
+        session = broker.sessions["hs-inproc"]
+        await _until(lambda: not session.queue and not session.inflight, 20,
+                     "every message of the session stored and acknowledged")
         svc.stop()
         assert await run == 0
         return svc.health
@@ -221,7 +225,7 @@ def test_broker_settings():
 
 def test_run_without_config_uses_the_shipped_default():
     from hemostream.config import DEFAULT_CONFIG, load_config
-    from hemostream.live.cli import _config
+    from hemostream.app.cli import live_config as _config
     assert _config(None) == load_config(DEFAULT_CONFIG)
 
 

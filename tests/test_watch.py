@@ -35,7 +35,7 @@ def tachycardia_lines(seconds: int = 60) -> list[dict]:
 
 
 def test_watch_shows_the_unit_and_acknowledges(broker, tmp_path):
-    from hemostream.dashboard.watch import BrokerFeed
+    from hemostream.app.watch import BrokerFeed
 
     db = f"sqlite:///{tmp_path / 'w.db'}"
     cfg = live_config(broker.url(), db, "hs-watch")

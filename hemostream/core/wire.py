@@ -8,8 +8,9 @@ fields and out-of-range values are errors that name the field.
 
 from __future__ import annotations
 
+import json
 import re
-from datetime import datetime
+from datetime import datetime, timezone
 from typing import Annotated, Any, Literal, NamedTuple
 
 from pydantic import (
@@ -62,11 +63,12 @@ PARAMS: dict[str, ParamSpec] = {
     "TEMP": ParamSpec("temperature", "core temperature"),
 }
 
-STATUSES = ("valid", "questionable", "invalid", "calibrating", "test")
 Status = Literal["valid", "questionable", "invalid", "calibrating", "test"]
 
 # --------------------------------------------------------------------------- topics
 
+ROOT = "hemo"
+SERVICE = "_svc"             # the "unit" level of the service status topics
 TOPIC_KINDS_IN = ("obs", "admit", "note", "cmd")
 TOPIC_KINDS_OUT = ("alarm", "derived")
 _ID = r"[A-Za-z0-9_-]{1,32}"
@@ -80,7 +82,7 @@ class Topic(NamedTuple):
     kind: str
 
     def __str__(self) -> str:
-        return f"hemo/{self.unit}/{self.bed}/{self.kind}"
+        return topic(self.unit, self.bed, self.kind)
 
 
 class TopicError(ValueError):
@@ -114,7 +116,120 @@ def parse_topic(topic: str) -> Topic:
 
 
 def topic(unit: str, bed: str, kind: str) -> str:
-    return f"hemo/{unit}/{bed}/{kind}"
+    """``hemo/<unit>/<bed>/<kind>``; ``+`` in any place makes a subscription filter.
+
+    >>> topic("SDU4", "bed-02", "obs"), topic("SDU4", "+", "alarm")
+    ('hemo/SDU4/bed-02/obs', 'hemo/SDU4/+/alarm')
+    """
+    return f"{ROOT}/{unit}/{bed}/{kind}"
+
+
+def bed_topic(bed_key: str, kind: str) -> str:
+    """The topic of a bed named by its key ``UNIT/BED`` (as the dashboard keys its beds).
+
+    >>> bed_topic("SDU4/bed-02", "cmd")
+    'hemo/SDU4/bed-02/cmd'
+    """
+    unit, _, bed = bed_key.partition("/")
+    return topic(unit, bed, kind)
+
+
+def status_topic(instance: str) -> str:
+    """The service status / health topic of one hemostream instance (``+``: every one).
+
+    >>> status_topic("hs-ward"), status_topic("+")
+    ('hemo/_svc/hs-ward/status', 'hemo/_svc/+/status')
+    """
+    return f"{ROOT}/{SERVICE}/{instance}/status"
+
+
+def input_filters(unit: str = "+") -> list[str]:
+    """Subscription filters for the input topics (obs, admit, note, cmd) of a unit."""
+    return [topic(unit, "+", kind) for kind in TOPIC_KINDS_IN]
+
+
+def split_topic(text: str) -> Topic | None:
+    """A lenient split of any four-level ``hemo/...`` topic (outputs and the service status
+    included, ``unit`` is ``_svc`` there) for readers of published messages; None otherwise.
+    Validation of input topics is :func:`parse_topic`'s.
+
+    >>> split_topic("hemo/_svc/hs-ward/status")
+    Topic(unit='_svc', bed='hs-ward', kind='status')
+    >>> split_topic("other/x") is None
+    True
+    """
+    parts = text.split("/")
+    if len(parts) != 4 or parts[0] != ROOT:
+        return None
+    return Topic(parts[1], parts[2], parts[3])
+
+
+def is_status_topic(t: Topic | None) -> bool:
+    return t is not None and t.unit == SERVICE
+
+
+# --------------------------------------------------------------------------- times
+#
+# One policy for every time on the wire and on the command line (docs/wire-format.md): RFC
+# 3339 text with an explicit offset (``Z`` or ``+hh:mm``). A time without an offset is
+# rejected (ValueError with a reason), never guessed as local time or UTC. Times inside
+# hemostream are epoch seconds (float, UTC); text goes out in UTC with milliseconds and ``Z``.
+
+_EPOCH = datetime(1970, 1, 1, tzinfo=timezone.utc)
+
+
+def epoch(t: datetime) -> float:
+    """Seconds since 1970-01-01T00:00:00Z of an aware datetime (exact to the microsecond).
+
+    >>> epoch(datetime(2026, 12, 1, 8, 0, tzinfo=timezone.utc))
+    1796112000.0
+    """
+    if t.tzinfo is None:
+        raise ValueError(f"time {t.isoformat()!r} has no UTC offset")
+    d = t - _EPOCH
+    return d.days * 86400.0 + d.seconds + d.microseconds / 1e6
+
+
+def parse_time(text: Any, what: str = "time") -> float:
+    """Epoch seconds of RFC 3339 text with an offset; ValueError naming ``what`` otherwise.
+
+    >>> parse_time("2026-12-01T09:00:00+01:00")
+    1796112000.0
+    >>> parse_time("2026-12-01T08:00:00")
+    Traceback (most recent call last):
+    ...
+    ValueError: time '2026-12-01T08:00:00' has no UTC offset: give Z or +hh:mm, e.g. 2026-12-01T08:00:00Z
+    """
+    if not isinstance(text, str):
+        raise ValueError(f"{what} must be an RFC 3339 timestamp string such as "
+                         "2026-12-01T08:15:00Z")
+    try:
+        t = datetime.fromisoformat(text)
+    except ValueError:
+        raise ValueError(f"{what} {text[:64]!r}: expected an RFC 3339 time such as "
+                         "2026-12-01T08:00:00Z") from None
+    if t.tzinfo is None:
+        raise ValueError(f"{what} {text[:64]!r} has no UTC offset: give Z or +hh:mm, e.g. "
+                         "2026-12-01T08:00:00Z")
+    return epoch(t)
+
+
+def parse_time_or_none(text: Any) -> float | None:
+    """:func:`parse_time`, or None for anything that is not a valid wire time."""
+    try:
+        return parse_time(text)
+    except (ValueError, OverflowError):
+        return None
+
+
+def format_epoch(t: float) -> str:
+    """RFC 3339 UTC text, millisecond precision, for epoch seconds.
+
+    >>> format_epoch(1796112000.25)
+    '2026-12-01T08:00:00.250Z'
+    """
+    return datetime.fromtimestamp(t, timezone.utc).isoformat(
+        timespec="milliseconds").replace("+00:00", "Z")
 
 
 # --------------------------------------------------------------------------- payloads
@@ -232,7 +347,38 @@ class RecordingLine(BaseModel):
 
 
 def format_time(t: datetime) -> str:
-    """RFC 3339 in UTC with millisecond precision and a ``Z`` suffix."""
-    from datetime import timezone
-
+    """RFC 3339 in UTC with millisecond precision and a ``Z`` suffix (aware datetimes only)."""
+    if t.tzinfo is None:
+        raise ValueError(f"time {t.isoformat()!r} has no UTC offset")
     return t.astimezone(timezone.utc).isoformat(timespec="milliseconds").replace("+00:00", "Z")
+
+
+# --------------------------------------------------------------------------- bodies
+# Message bodies hemostream itself publishes outside the core (commands, service status).
+
+
+def encode(body: dict[str, Any]) -> bytes:
+    """Compact JSON bytes of a message body, as published."""
+    return json.dumps(body, separators=(",", ":")).encode()
+
+
+def command_body(action: str, alarm: str, by: str, now: float) -> dict[str, Any]:
+    """A ``cmd`` message (acknowledge / pause_audio), validated against :class:`CommandMessage`
+    (pydantic ValidationError when a field is out of bounds).
+
+    >>> command_body("acknowledge", "HR_high", "nurse-a", 1796112000.0)["time"]
+    '2026-12-01T08:00:00.000Z'
+    """
+    body = {"v": VERSION, "time": format_epoch(now), "action": action, "alarm": alarm,
+            "by": by}
+    CommandMessage.model_validate(body)
+    return body
+
+
+def status_body(instance: str, state: str, now: float | None, **extra: Any) -> dict[str, Any]:
+    """The retained service status (``online`` / ``offline``) on :func:`status_topic`."""
+    d: dict[str, Any] = {"v": VERSION, "kind": "status", "state": state, "instance": instance}
+    if now is not None:
+        d["time"] = format_epoch(now)
+    d.update(extra)
+    return d

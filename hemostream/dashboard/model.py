@@ -13,10 +13,11 @@ from __future__ import annotations
 
 from collections import deque
 from dataclasses import dataclass, field
-from datetime import datetime
 from typing import Any
 
 from ..core.config import DEFAULT_MAX_AGE
+from ..core.wire import is_status_topic, split_topic
+from ..core.wire import parse_time_or_none  # None when missing or without an offset
 
 #: how long a derived value stays current without a new publication (seconds)
 DERIVED_MAX_AGE = 30.0
@@ -25,15 +26,6 @@ STRIP_SECONDS = 30 * 60
 STRIP_STEP = 30.0
 
 PRIORITY_RANK = {"high": 3, "medium": 2, "low": 1, "info": 0}
-
-
-def parse_time(text: str | None) -> float | None:
-    if not text:
-        return None
-    try:
-        return datetime.fromisoformat(text).timestamp()
-    except (TypeError, ValueError):
-        return None
 
 
 @dataclass
@@ -110,16 +102,14 @@ class UnitView:
 
     def apply(self, topic: str, payload: Any) -> None:
         """Take one published (or observed input) message. Unknown shapes are ignored."""
-        parts = topic.split("/")
-        if not isinstance(payload, dict):
+        t = split_topic(topic)
+        if not isinstance(payload, dict) or t is None:
             return
-        if len(parts) == 4 and parts[0] == "hemo" and parts[1] == "_svc":
+        if is_status_topic(t):
             self.service = payload
             return
-        if len(parts) != 4 or parts[0] != "hemo":
-            return
-        key = f"{parts[1]}/{parts[2]}"
-        kind = parts[3]
+        key = f"{t.unit}/{t.bed}"
+        kind = t.kind
         self.messages += 1
         if kind == "derived":
             self._derived(self.bed(key), payload)
@@ -127,13 +117,13 @@ class UnitView:
             self._alarm(self.bed(key), payload)
         elif kind == "note":
             b = self.bed(key)
-            t = parse_time(payload.get("time"))
+            t = parse_time_or_none(payload.get("time"))
             b.notes.append({"time": t, "kind": payload.get("kind"),
                             "volume_ml": payload.get("volume_ml"), "param": payload.get("param"),
                             "by": payload.get("by")})
 
     def _derived(self, b: BedState, p: dict) -> None:
-        t = parse_time(p.get("time"))
+        t = parse_time_or_none(p.get("time"))
         if t is None:
             return
         b.last_time = max(b.last_time, t)
@@ -143,7 +133,7 @@ class UnitView:
                 b.values[name] = Reading(float(v), t)
         for name, pair in (p.get("measured") or {}).items():
             if isinstance(pair, list) and len(pair) == 2 and isinstance(pair[0], int | float):
-                mt = parse_time(pair[1])
+                mt = parse_time_or_none(pair[1])
                 if mt is not None:
                     old = b.values.get(name)
                     if old is None or mt >= old.time:
@@ -170,13 +160,13 @@ class UnitView:
             alarms.sort(key=lambda a: (-PRIORITY_RANK.get(a.get("priority"), 0),
                                        -(a.get("since") or 0)))
             b.alarms = alarms
-            t = parse_time(p.get("time"))
+            t = parse_time_or_none(p.get("time"))
             if t is not None:
                 self.newest = max(self.newest, t)
         ev = p.get("event")
         if isinstance(ev, dict):
             ev = dict(ev)
-            ev["time_s"] = parse_time(ev.get("time"))
+            ev["time_s"] = parse_time_or_none(ev.get("time"))
             b.history.append(ev)
             if ev.get("rule") == "fluid_challenge" and ev.get("transition") == "result":
                 b.fluid_challenge = ev

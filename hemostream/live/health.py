@@ -10,21 +10,17 @@ The payloads on ``hemo/_svc/<instance>/status`` (documented in docs/live.md):
 
 from __future__ import annotations
 
-import json
 import time
 from collections import Counter
 from dataclasses import dataclass, field
 from typing import Any
 
-from ..core.processor import iso
+from ..core.wire import encode, format_epoch, status_body
 
 
 def status_payload(instance: str, state: str, now: float | None, **extra: Any) -> bytes:
-    d: dict[str, Any] = {"v": 1, "kind": "status", "state": state, "instance": instance}
-    if now is not None:
-        d["time"] = iso(now)
-    d.update(extra)
-    return json.dumps(d, separators=(",", ":")).encode()
+    """The encoded service status message (:func:`hemostream.core.wire.status_body`)."""
+    return encode(status_body(instance, state, now, **extra))
 
 
 @dataclass
@@ -101,7 +97,7 @@ class Health:
         outage = self.outage_total_s + (now - self.down_since
                                         if self.down_since is not None and self.connects else 0)
         d = {
-            "v": 1, "kind": "health", "instance": self.instance, "time": iso(now),
+            "v": 1, "kind": "health", "instance": self.instance, "time": format_epoch(now),
             "interval_s": round(dt, 2),
             "messages_per_s": round(rate, 1),
             "received": self.received, "stored": self.stored, "acknowledged": self.acked,

@@ -10,28 +10,24 @@ the repeat by its wire format identity.
 
 from __future__ import annotations
 
+import argparse
 import asyncio
 import json
+import sys
 import logging
 import time
 import uuid
 from dataclasses import dataclass
-from datetime import datetime, timezone
 from typing import Any, Callable, Iterable, Iterator
 
+from ..config import load_config
 from ..core.config import BrokerConfig
-from ..core.processor import epoch, iso
+from ..core.wire import format_epoch, parse_time, parse_time_or_none
+from .mqtt import MqttTransport
 from .service import backoff
 from .transport import TransportError
 
 log = logging.getLogger("hemostream.live.publish")
-
-
-def _parse(t: str) -> float:
-    d = datetime.fromisoformat(t)
-    if d.tzinfo is None:
-        d = d.replace(tzinfo=timezone.utc)
-    return epoch(d)
 
 
 def as_record(line: Any) -> dict | None:
@@ -80,7 +76,7 @@ def map_times(rec: dict, fn: Callable[[float], float]) -> dict:
         if not isinstance(v, str):
             return v
         try:
-            return iso(fn(_parse(v)))
+            return format_epoch(fn(parse_time(v)))
         except ValueError:
             return v
 
@@ -114,10 +110,7 @@ def close_gaps(recs: Iterable[dict], max_gap_s: float = 5.0,
     for rec in recs:
         rx = rec.get("rx")
         if isinstance(rx, str):
-            try:
-                t = _parse(rx)
-            except ValueError:
-                t = None
+            t = parse_time_or_none(rx)
             if t is not None:
                 if prev is not None and t - prev > max_gap_s:
                     shift += t - prev - keep_s
@@ -155,8 +148,6 @@ async def publish_recording_lines(lines_iter: Iterable[Any], url: str, speed: fl
     now). ``broker`` supplies credentials and TLS files (the URL overrides its ``url``).
     Gives up (TransportError) after ``max_seconds_down`` without a connection.
     """
-    from .mqtt import MqttTransport
-
     base = broker or BrokerConfig()
     cfg = base.model_copy(update={"url": url, "client_id": client_id
                                   or f"hemostream-pub-{uuid.uuid4().hex[:8]}"})
@@ -179,7 +170,7 @@ async def publish_recording_lines(lines_iter: Iterable[Any], url: str, speed: fl
         recs = (rt.record(r) for r in recs)
     elif retime:                    # as fast as possible: the recording ends now
         recs = list(recs)
-        rxs = [_parse(r["rx"]) for r in recs if isinstance(r.get("rx"), str)]
+        rxs = [t for t in (parse_time_or_none(r.get("rx")) for r in recs) if t is not None]
         rt = Retimer(clock() - ((rxs[-1] - rxs[0]) if rxs else 0.0))
         recs = [rt.record(r) for r in recs]
     t_start = time.monotonic()
@@ -251,8 +242,8 @@ async def publish_recording_lines(lines_iter: Iterable[Any], url: str, speed: fl
         for rec in recs:
             if stop is not None and stop.is_set():
                 break
-            if paced and isinstance(rec.get("rx"), str):
-                rx = _parse(rec["rx"])
+            rx = parse_time_or_none(rec.get("rx")) if paced else None
+            if rx is not None:      # a line without a valid arrival time goes out unpaced
                 if rx0 is None:
                     rx0 = rx
                 delay = (rx - rx0) / (1.0 if retime else speed) - (time.monotonic() - wall0)
@@ -271,9 +262,6 @@ async def publish_recording_lines(lines_iter: Iterable[Any], url: str, speed: fl
 
 def main(argv: list[str] | None = None) -> int:
     """``python -m hemostream.live.publish RECORDING URL [--speed N]``: a stand-in gateway."""
-    import argparse
-    import sys
-
     p = argparse.ArgumentParser(prog="python -m hemostream.live.publish",
                                 description="Publish a recording (JSON Lines) to a broker at "
                                 "QoS 1, paced by its arrival times, times moved to now.")
@@ -286,7 +274,6 @@ def main(argv: list[str] | None = None) -> int:
     args = p.parse_args(argv)
     broker = None
     if args.config:
-        from ..config import load_config
         broker = load_config(args.config).broker
     f = sys.stdin.buffer if args.recording == "-" else open(args.recording, "rb")
     try:

@@ -29,11 +29,13 @@ from collections import deque
 from typing import Any, Callable
 
 from sqlalchemy import event
+from sqlalchemy.engine import make_url
 
 from ..core.config import Config
 from ..core.processor import Processor
-from ..core.wire import TOPIC_KINDS_IN
-from ..replay import make_rules
+from ..core.wire import encode, format_epoch, input_filters
+from ..core.wire import status_topic as instance_status_topic
+from ..pipeline import make_rules
 from ..store import StoreError, Writer, load_resume, open_engine, rows_of
 from .health import Health, log_line, status_payload
 from .transport import Incoming, Transport, TransportError
@@ -51,11 +53,12 @@ def subscription_filters(cfg: Config) -> list[str]:
     ['hemo/+/+/obs', 'hemo/+/+/admit']
     """
     units = [u.id for u in cfg.units] or ["+"]
-    return [f"hemo/{u}/+/{kind}" for u in units for kind in TOPIC_KINDS_IN]
+    return [f for u in units for f in input_filters(u)]
 
 
 def status_topic(cfg: Config) -> str:
-    return f"hemo/_svc/{cfg.instance}/status"
+    """This instance's status / health topic."""
+    return instance_status_topic(cfg.instance)
 
 
 def backoff(attempt: int, low: float, high: float, rnd: random.Random = random.Random()) -> float:
@@ -326,7 +329,7 @@ class Service:
                     log.info("connected to the broker (%s session)",
                              "resumed" if session else "new")
                 self.outbox.retained[self.status_topic] = status_payload(
-                    self.cfg.instance, "online", self.clock(), since=_iso(self.health.started))
+                    self.cfg.instance, "online", self.clock(), since=format_epoch(self.health.started))
                 self.outbox.online()
                 self.ready.set()
                 async for m in self.t.messages():
@@ -449,8 +452,7 @@ class Service:
                      h.received - h.stored, self.writer.q.qsize())
         self.last_health = d
         if self.t.connected:
-            self.t.publish(self.status_topic, json.dumps(d, separators=(",", ":")).encode(),
-                           1, False)
+            self.t.publish(self.status_topic, encode(d), 1, False)
         if self.log_health:
             log.info("%s", log_line(d))
         if self.on_health is not None:
@@ -458,14 +460,8 @@ class Service:
         return d
 
 
-def _iso(t: float) -> str:
-    from ..core.processor import iso
-    return iso(t)
-
-
 def _safe_url(url: str) -> str:
     """A database URL without its password, for the log."""
-    from sqlalchemy.engine import make_url
     try:
         return make_url(url).render_as_string(hide_password=True)
     except Exception:  # noqa: BLE001

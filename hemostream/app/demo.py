@@ -1,6 +1,6 @@
 """``hemostream demo``: a simulated ward through the live pipeline, with no broker to install.
 
-The ward's messages go through an in-process broker (:mod:`.inproc`: persistent session,
+The ward's messages go through an in-process broker (:mod:`hemostream.live.inproc`: persistent session,
 QoS 1 acknowledgement after the commit, retained alarm state) into the same
 :class:`~hemostream.live.service.Service` that ``hemostream run`` uses, and into a SQLite file.
 ``--broker URL`` sends the same stream through a real broker instead. A subscriber of the
@@ -26,17 +26,29 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable, Iterable, Iterator, TextIO
 
+from rich.console import Console
+
+from .. import CAUTION
 from ..core.config import Config
-from ..core.processor import iso
-from .inproc import InprocBroker
-from .publish import (Retimer, _parse, as_record, close_gaps, payload_bytes,
-                      publish_recording_lines)
-from .service import Service, status_topic
-from .transport import TransportError
+from ..core.wire import (bed_topic, command_body, encode, format_epoch, is_status_topic,
+                         parse_time_or_none, split_topic, status_topic, topic)
+from ..dashboard import Dashboard, Screen, UnitView
+from ..live.health import status_payload
+from ..live.inproc import InprocBroker
+from ..live.mqtt import MqttTransport
+from ..live.publish import (Retimer, as_record, close_gaps, payload_bytes,
+                            publish_recording_lines)
+from ..live.service import Service
+from ..live.transport import TransportError
+from .watch import unit_view
+
+try:
+    import simulators
+except ImportError:              # a separate, optional package: the example recording then
+    simulators = None
 
 log = logging.getLogger("hemostream.live.demo")
 
-from .. import CAUTION
 EXAMPLE_RECORDING = (Path(__file__).resolve().parent.parent.parent / "simulators"
                      / "recordings" / "example-ward.jsonl")
 
@@ -48,9 +60,7 @@ def demo_lines(scenario: str | None = None, duration_s: float | None = None,
     example recording, and the sentence says so."""
     why = "the simulators are not installed"
     missing_generate = "the simulators package has no generate() (reinstall: pip install -e .)"
-    try:
-        import simulators
-    except ImportError:
+    if simulators is None:
         generate = None
     else:
         generate = getattr(simulators, "generate", None)
@@ -77,8 +87,8 @@ def demo_lines(scenario: str | None = None, duration_s: float | None = None,
         t0 = None
         with open(EXAMPLE_RECORDING, "rb") as f:
             for rec in close_gaps(r for r in map(as_record, f) if r is not None):
-                if duration_s is not None and isinstance(rec.get("rx"), str):
-                    t = _parse(rec["rx"])
+                t = parse_time_or_none(rec.get("rx")) if duration_s is not None else None
+                if t is not None:
                     t0 = t if t0 is None else t0
                     if t - t0 > duration_s:
                         return
@@ -115,27 +125,27 @@ class Summary:
     def apply(self, topic: str, payload: Any) -> None:
         if not isinstance(payload, dict):
             return
-        parts = topic.split("/")
-        if len(parts) != 4:
+        t = split_topic(topic)
+        if t is None:
             return
         self.outputs += 1
-        if parts[1] == "_svc":
+        if is_status_topic(t):
             if payload.get("kind") == "health":
                 self.health = payload
             return
-        b = self.beds.setdefault(f"{parts[1]}/{parts[2]}", {"values": {}, "alarms": None})
-        if parts[3] == "derived":
+        b = self.beds.setdefault(f"{t.unit}/{t.bed}", {"values": {}, "alarms": None})
+        if t.kind == "derived":
             b["time"] = payload.get("time")
             for p, v in (payload.get("measured") or {}).items():
                 if isinstance(v, list) and v:
                     b["values"][p] = v[0]
             b["values"].update(payload.get("values") or {})
-        elif parts[3] == "alarm":
+        elif t.kind == "alarm":
             if "state" in payload:
                 b["alarms"] = payload["state"]
             elif "event" in payload:
                 ev = payload["event"]
-                self.events.append(f"{ev.get('time', '')[11:19]} {topic.split('/')[2]} "
+                self.events.append(f"{ev.get('time', '')[11:19]} {t.bed} "
                                    f"{ev.get('rule', ev.get('alarm_id', '?'))} "
                                    f"{ev.get('transition', '')} ({ev.get('priority', '')})")
 
@@ -179,8 +189,9 @@ async def _feed_inproc(broker: InprocBroker, lines: Iterable[dict], clock: Scale
     for rec in lines:
         if stop.is_set():
             break
-        if isinstance(rec.get("rx"), str):
-            delay = clock.wall_delay(_parse(rec["rx"]))
+        rx = parse_time_or_none(rec.get("rx"))
+        if rx is not None:
+            delay = clock.wall_delay(rx)
             if delay > 0:
                 try:
                     await asyncio.wait_for(stop.wait(), delay)
@@ -225,11 +236,10 @@ async def run_demo(cfg: Config, db_url: str, *, speed: float = 1.0,
             except (NotImplementedError, RuntimeError):
                 pass
     summary = Summary()
-    will_topic = status_topic(cfg)
-    offline = json.dumps({"v": 1, "kind": "status", "state": "offline",
-                          "instance": cfg.instance, "reason": "connection lost"}).encode()
-    out_filters = ["hemo/+/+/derived", "hemo/+/+/alarm", "hemo/+/+/note",
-                   f"hemo/_svc/{cfg.instance}/status"]
+    will_topic = status_topic(cfg.instance)
+    offline = status_payload(cfg.instance, "offline", None, reason="connection lost")
+    out_filters = [topic("+", "+", "derived"), topic("+", "+", "alarm"),
+                   topic("+", "+", "note"), status_topic(cfg.instance)]
 
     def show(topic: str, payload: bytes) -> None:
         try:
@@ -246,7 +256,6 @@ async def run_demo(cfg: Config, db_url: str, *, speed: float = 1.0,
                                   clock=clock, receive_maximum=cfg.broker.receive_maximum)
         watcher = broker.client("hemostream-demo-view", persistent=False)
     else:
-        from .mqtt import MqttTransport
         cfg = cfg.model_copy(update={"broker": cfg.broker.model_copy(
             update={"url": broker_url})})
         transport = MqttTransport(cfg.broker, will=(will_topic, offline), clock=clock)
@@ -256,10 +265,9 @@ async def run_demo(cfg: Config, db_url: str, *, speed: float = 1.0,
     svc_task = asyncio.create_task(svc.run())
     dash = None
     if dashboard:
-        dash = _start_dashboard(svc, clock, loop, source, operator,
-                                broker if broker_url is None else None, watcher)
-        if dash is not None:
-            view = dash[2]
+        dash = demo_dashboard(svc, clock, loop, source, operator,
+                              broker if broker_url is None else None, watcher).start()
+        view = dash.feed
 
     async def watch() -> None:
         while True:
@@ -275,10 +283,10 @@ async def run_demo(cfg: Config, db_url: str, *, speed: float = 1.0,
     async def ticker() -> None:
         while True:
             await asyncio.sleep(every_s if dash is None else 0.2)
-            if dash is not None and not dash[0].is_alive():
+            if dash is not None and not dash.alive():
                 stop.set()                    # q in the dashboard
             if view is None:
-                stamp = iso(clock())[11:19]
+                stamp = format_epoch(clock())[11:19]
                 print(f"[{stamp}] " + CAUTION.split(".")[0] + ".", file=out)
                 for line in summary.lines():
                     print(line, file=out)
@@ -311,8 +319,7 @@ async def run_demo(cfg: Config, db_url: str, *, speed: float = 1.0,
                 await asyncio.sleep(0.05)
     finally:
         if dash is not None:
-            dash[1].set()
-            await asyncio.to_thread(dash[0].join, 5)
+            await asyncio.to_thread(dash.close, 5)
         svc.stop()
         code = await svc_task
         for t in (watch_task, tick_task):
@@ -340,44 +347,59 @@ async def run_demo(cfg: Config, db_url: str, *, speed: float = 1.0,
     return result
 
 
-def _start_dashboard(svc: Service, clock: ScaledClock, loop: asyncio.AbstractEventLoop,
-                     source: str, operator: str | None, broker: InprocBroker | None,
-                     watcher) -> tuple[threading.Thread, threading.Event, Callable] | None:
-    """The rich unit dashboard in a thread, fed from the published outputs; acknowledge and
-    audio pause keys send ``cmd`` messages the same way ``hemostream ack`` does. None when the
-    dashboard is not available (the compact summary is printed instead)."""
-    try:
-        from ..dashboard import Dashboard, Screen, UnitView
-    except ImportError:
-        return None
-    from ..core.wire import format_time
-    from datetime import datetime, timezone
+@dataclass
+class DemoDashboard:
+    """The rich unit dashboard of the demo, fed from the published outputs (:meth:`feed`),
+    redrawn on its own thread; acknowledge and audio pause keys send ``cmd`` messages the same
+    way ``hemostream ack`` does."""
 
-    model = UnitView()
+    dashboard: Dashboard
+    model: UnitView
+    lock: threading.Lock
+    stop: threading.Event = field(default_factory=threading.Event)
+    thread: threading.Thread | None = None
+
+    def feed(self, topic: str, payload: Any) -> None:
+        with self.lock:
+            self.model.apply(topic, payload)
+
+    def start(self) -> "DemoDashboard":
+        self.thread = threading.Thread(target=self.dashboard.run, args=(self.stop,),
+                                       daemon=True, name="dashboard")
+        self.thread.start()
+        return self
+
+    def alive(self) -> bool:
+        return self.thread is not None and self.thread.is_alive()
+
+    def close(self, timeout: float = 5.0) -> None:
+        self.stop.set()
+        if self.thread is not None:
+            self.thread.join(timeout)
+
+
+def demo_dashboard(svc: Service, clock: Callable[[], float], loop: asyncio.AbstractEventLoop,
+                   source: str, operator: str | None, broker: InprocBroker | None,
+                   watcher, console: Console | None = None) -> DemoDashboard:
+    """The demo's dashboard (not started): the same model as ``watch`` builds, with the
+    configured maximum ages of ``svc.cfg``."""
+    model = unit_view(svc.cfg)
     lock = threading.Lock()
 
-    def feed(topic: str, payload: Any) -> None:
-        with lock:
-            model.apply(topic, payload)
-
     def send_command(bed_key: str, action: str, alarm_id: str) -> None:
-        body = {"v": 1, "time": format_time(datetime.fromtimestamp(clock(), timezone.utc)),
-                "action": action, "alarm": alarm_id, "by": operator or "demo"}
-        data = json.dumps(body, separators=(",", ":")).encode()
-        topic = f"hemo/{bed_key}/cmd"
+        data = encode(command_body(action, alarm_id, operator or "demo", clock()))
+        cmd_topic = bed_topic(bed_key, "cmd")
         if broker is not None:
-            loop.call_soon_threadsafe(broker.publish, topic, data, 1, False)
+            loop.call_soon_threadsafe(broker.publish, cmd_topic, data, 1, False)
         else:
-            loop.call_soon_threadsafe(watcher.publish, topic, data, 1, False)
+            loop.call_soon_threadsafe(watcher.publish, cmd_topic, data, 1, False)
 
     def status() -> dict:
         h = svc.last_health or {}
         return {"connected": svc.t.connected, "rate": h.get("messages_per_s", 0.0),
                 "lag_s": (h.get("lag_s") or {}).get("ingest_max")}
 
-    stop = threading.Event()
     dash = Dashboard(model, Screen(unit="demo ward", source=source, operator=operator),
-                     clock=clock, send_command=send_command, status=status, lock=lock)
-    th = threading.Thread(target=dash.run, args=(stop,), daemon=True, name="dashboard")
-    th.start()
-    return th, stop, feed
+                     clock=clock, send_command=send_command, status=status, lock=lock,
+                     console=console)
+    return DemoDashboard(dash, model, lock)

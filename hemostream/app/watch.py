@@ -1,5 +1,7 @@
 """``hemostream watch``: the unit dashboard on another machine, fed from the broker.
 
+The wiring only: :mod:`hemostream.dashboard` is the view, :mod:`hemostream.live` the broker client.
+
 Subscribes (read-only) to the service's ``alarm`` and ``derived`` topics of one unit, the
 unit's ``note`` topics and the service status; acknowledge and audio-pause keys publish a
 ``cmd`` message exactly as ``hemostream ack`` does (that needs publish rights on ``cmd``).
@@ -13,26 +15,32 @@ import logging
 import os
 import threading
 import time
-from datetime import datetime, timezone
 from typing import Any
 
+from rich.console import Console
+
 from ..core.config import Config
-from ..core.wire import format_time
-from .app import Dashboard
-from .model import UnitView
-from .render import Screen, unit_screen
+from ..core.wire import bed_topic, command_body, encode, status_topic, topic
+from ..dashboard import Dashboard, Screen, UnitView, unit_screen
+from ..live.mqtt import MqttTransport
+from ..live.service import backoff
+from ..live.transport import TransportError
 
 log = logging.getLogger("hemostream.watch")
+
+
+def unit_view(cfg: Config) -> UnitView:
+    """The dashboard model for ``cfg``: a value goes stale after the configured maximum age
+    of its parameter (``[derive] max_age_s``), in ``watch`` and in the demo alike."""
+    return UnitView(cfg.derive.max_age_s)
 
 
 class BrokerFeed:
     """Keeps a :class:`UnitView` current from the broker, on its own event-loop thread."""
 
     def __init__(self, cfg: Config, unit: str) -> None:
-        from ..live.mqtt import MqttTransport
-
         self.unit = unit
-        self.view = UnitView(cfg.derive.max_age_s)
+        self.view = unit_view(cfg)
         self.lock = threading.Lock()
         broker = cfg.broker.model_copy(update={"client_id": f"hemostream-watch-{os.getpid()}"})
         self.transport = MqttTransport(broker, persistent=False)
@@ -43,8 +51,8 @@ class BrokerFeed:
         self.loop = asyncio.new_event_loop()
         self._stop = asyncio.Event()
         self._thread = threading.Thread(target=self._run, name="watch-feed", daemon=True)
-        self.filters = [f"hemo/{unit}/+/alarm", f"hemo/{unit}/+/derived",
-                        f"hemo/{unit}/+/note", "hemo/_svc/+/status"]
+        self.filters = [topic(unit, "+", "alarm"), topic(unit, "+", "derived"),
+                        topic(unit, "+", "note"), status_topic("+")]
 
     def start(self) -> None:
         self._thread.start()
@@ -59,9 +67,6 @@ class BrokerFeed:
         self.loop.run_until_complete(self._main())
 
     async def _main(self) -> None:
-        from ..live.service import backoff
-        from ..live.transport import TransportError
-
         attempt = 0
         cfg = self.transport.cfg
         while not self._stop.is_set():
@@ -121,20 +126,16 @@ class BrokerFeed:
 
     def send_command(self, bed_key: str, action: str, alarm: str, by: str) -> None:
         """Publish a ``cmd`` message (the same message ``hemostream ack`` sends)."""
-        body = {"v": 1, "time": format_time(datetime.now(timezone.utc)), "action": action,
-                "alarm": alarm, "by": by}
-        topic = f"hemo/{bed_key}/cmd"
+        body = command_body(action, alarm, by, time.time())
         fut = asyncio.run_coroutine_threadsafe(
-            self.transport.publish_wait(topic, json.dumps(body, separators=(",", ":")).encode(),
-                                        1, False, timeout=5), self.loop)
+            self.transport.publish_wait(bed_topic(bed_key, "cmd"), encode(body), 1, False,
+                                        timeout=5), self.loop)
         fut.result(6)
 
 
 def run_watch(cfg: Config, unit: str, operator: str | None = None,
               once_s: float | None = None, size: tuple[int, int] = (120, 40)) -> int:
     """Show the unit live until quit; with ``once_s``, print one screen after that long."""
-    from rich.console import Console
-
     feed = BrokerFeed(cfg, unit)
     feed.start()
     try:
@@ -161,56 +162,3 @@ def run_watch(cfg: Config, unit: str, operator: str | None = None,
         return 0
     finally:
         feed.stop()
-
-
-def add_parser(sub) -> None:
-    """Register ``hemostream watch`` on the CLI's subparsers."""
-    from .. import CAUTION
-
-    w = sub.add_parser(
-        "watch", help="show a unit's live dashboard from the broker (read-only)",
-        description="The unit dashboard on any machine: subscribes to the service's alarm "
-                    "and derived topics of one unit (subscribe rights are enough). The keys "
-                    "a and p acknowledge or pause the audio of the selected alarm by "
-                    "publishing a cmd message, as 'hemostream ack' does.", epilog=CAUTION)
-    w.add_argument("--broker", metavar="URL", help="mqtt://host:port or mqtts://host:port "
-                   "(default: the config's broker.url)")
-    w.add_argument("--unit", required=True, metavar="U", help="unit id, e.g. SDU4")
-    w.add_argument("--config", metavar="FILE", help="TOML configuration (broker security "
-                   "settings: username, password_env/password_file, ca_file ...)")
-    w.add_argument("--operator", metavar="NAME", help="who acknowledges (recorded for "
-                   "audit); without it the acknowledge keys are off")
-    w.add_argument("--once", type=float, metavar="SECONDS", help="collect for SECONDS, print "
-                   "one screen as text and exit (for scripts and checks)")
-    w.add_argument("--size", default="120x40", metavar="WxH",
-                   help="screen size for --once (default 120x40)")
-    w.set_defaults(func=_cmd_watch)
-
-
-def _cmd_watch(args) -> int:
-    import sys
-
-    from ..config import load_for_command, with_overrides
-    from ..core.wire import ID_RE
-    from ..live.mqtt import BrokerSettingsError
-
-    cfg = with_overrides(load_for_command(args.config), broker=args.broker)
-    if not ID_RE.match(args.unit):
-        print(f"error: --unit {args.unit!r}: 1-32 characters of A-Z a-z 0-9 - _",
-              file=sys.stderr)
-        return 2
-    if args.once is None and not sys.stdout.isatty():
-        print("error: the live dashboard needs a terminal; use --once SECONDS for text",
-              file=sys.stderr)
-        return 2
-    try:
-        w, h = (int(x) for x in args.size.lower().split("x"))
-    except ValueError:
-        print(f"error: --size {args.size!r}: expected WIDTHxHEIGHT, e.g. 120x40",
-              file=sys.stderr)
-        return 2
-    try:
-        return run_watch(cfg, args.unit, args.operator, args.once, (w, h))
-    except BrokerSettingsError as e:
-        print(f"error: {e}", file=sys.stderr)
-        return 2

@@ -1,0 +1,424 @@
+"""The ``hemostream`` command: every subcommand is registered here, the composition root.
+
+``replay``, ``query`` and ``check-config`` (storage and the core), ``run`` and ``ack`` (the
+live service over a broker), ``demo`` (:mod:`.demo`), ``watch`` (:mod:`.watch`), ``compare``
+and ``report`` (implemented in :mod:`hemostream.review`) and, when the simulators are
+installed, ``simulate``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import json
+import logging
+import os
+import signal
+import sys
+import time
+from pathlib import Path
+
+from pydantic import ValidationError
+from rich.console import Console
+from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
+
+from .. import CAUTION, query
+from ..config import ConfigError, load_config, load_for_command, with_overrides
+from ..core.config import Config
+from ..core.wire import ID_RE, command_body, encode, topic
+from ..live.health import status_payload
+from ..live.mqtt import BrokerSettingsError, MqttTransport
+from ..live.publish import publish_recording_lines
+from ..live.service import Service, status_topic
+from ..live.transport import TransportError
+from ..replay import replay_file
+from ..review.cli import add_parsers as add_review_parsers
+from ..store import StoreError, open_engine
+from .demo import run_demo
+from .watch import run_watch
+
+try:
+    from simulators.cli import add_parser as add_simulate_parser
+except ImportError:              # the simulators are a separate, optional package
+    add_simulate_parser = None
+
+log = logging.getLogger("hemostream.live")
+
+err = Console(stderr=True, soft_wrap=True)
+
+
+def live_config(path: str | None) -> Config:
+    """The named configuration, or the shipped default (configs/default.toml) for the live
+    commands."""
+    return load_for_command(path, shipped_default=True)
+
+
+def setup_logging(level: str) -> None:
+    logging.basicConfig(level=getattr(logging, level.upper()), stream=sys.stderr,
+                        format="%(asctime)s %(levelname)s %(name)s: %(message)s")
+    # paho logs packet summaries (topics, sizes) at debug; never payloads
+    logging.getLogger("hemostream.live.paho").setLevel(
+        logging.DEBUG if level.upper() == "DEBUG" else logging.WARNING)
+
+
+# --------------------------------------------------------------------------- replay, query
+
+def cmd_replay(args) -> int:
+    cfg = load_for_command(args.config)
+    path = Path(args.recording)
+    if not path.is_file():
+        err.print(f"[red]error:[/] recording {str(path)!r} does not exist or is not a file")
+        return 2
+    url = args.db or cfg.store.url
+    show = err.is_terminal and path.stat().st_size > 2_000_000 and not args.quiet
+    try:
+        with Progress(TextColumn("replaying"), BarColumn(), TextColumn("{task.percentage:>3.0f}%"),
+                      TimeRemainingColumn(), console=err, disable=not show,
+                      transient=True) as prog:
+            task = prog.add_task("replay", total=path.stat().st_size)
+            summary = replay_file(path, url, cfg, speed=args.speed,
+                                  progress=lambda d, t: prog.update(task, completed=d))
+    except StoreError as e:
+        err.print(f"[red]error:[/] {e}", highlight=False)
+        return 1
+    except OSError as e:
+        err.print(f"[red]error:[/] cannot read {str(path)!r}: {e.strerror or e}")
+        return 1
+    if args.json:
+        print(json.dumps(summary.as_dict(), indent=2))
+        return 0
+    out = Console(soft_wrap=True)
+    out.print(f"[bold]replayed[/] {summary.path} into {summary.db_url}")
+    out.print(f"  lines {summary.lines}   messages stored {summary.messages}   "
+              f"observations {summary.observations}   duplicates dropped {summary.duplicates}"
+              f"   late {summary.late}")
+    out.print(f"  derived values computed {summary.derived_computed}, stored "
+              f"{summary.derived_stored}   alarm events {summary.alarm_events}")
+    out.print(f"  rejected {summary.rejected_total}"
+              + "".join(f"\n    {k}: {v}" for k, v in summary.rejected.items()))
+    out.print(f"  {summary.seconds:.2f} s, {summary.messages_per_s:,.0f} lines/s")
+    out.print(f"  see them with: hemostream query rejected --db {summary.db_url}"
+              if summary.rejected_total else
+              f"  see them with: hemostream query derived --db {summary.db_url}")
+    return 0
+
+
+def cmd_query(args) -> int:
+    cfg = load_for_command(args.config)
+    url = args.db or cfg.store.url
+    if url.startswith("sqlite:///") and not Path(url[len("sqlite:///"):]).exists():
+        err.print(f"[red]error:[/] database file {url[len('sqlite:///'):]!r} does not exist")
+        return 1
+    try:
+        since = query.parse_since(args.since) if args.since else None
+    except ValueError as e:
+        err.print(f"[red]error:[/] {e}")
+        return 2
+    try:
+        engine = open_engine(url, create=False)
+        n = query.write(query.rows(engine, args.kind, args.bed, args.param, since, args.limit),
+                        args.format, kind=args.kind)
+    except StoreError as e:
+        err.print(f"[red]error:[/] {e}", highlight=False)
+        return 1
+    except BrokenPipeError:
+        return 0
+    if args.format == "table":
+        err.print(f"{n} row(s)")
+    return 0
+
+
+def cmd_check_config(args) -> int:
+    bad = 0
+    for f in args.files:
+        try:
+            load_config(f)
+            print(f"{f}: ok")
+        except ConfigError as e:
+            bad += 1
+            print(str(e))
+    return 1 if bad else 0
+
+
+# --------------------------------------------------------------------------- run
+
+def cmd_run(args) -> int:
+    cfg = with_overrides(live_config(args.config), args.broker, args.db)
+    setup_logging(args.log_level)
+    log.info("%s", CAUTION)
+    offline = status_payload(cfg.instance, "offline", None, reason="connection lost")
+    try:
+        transport = MqttTransport(cfg.broker, will=(status_topic(cfg), offline))
+    except BrokerSettingsError as e:
+        log.error("%s", e)
+        return 2
+    log.info("broker %s as client %r (QoS 1, persistent session, acknowledged after "
+             "storing)", transport.address, cfg.broker.client_id)
+    svc = Service(cfg, transport)
+
+    async def main() -> int:
+        loop = asyncio.get_running_loop()
+        for sig in (signal.SIGINT, signal.SIGTERM):
+            loop.add_signal_handler(sig, svc.stop)
+        return await svc.run()
+
+    return asyncio.run(main())
+
+
+# --------------------------------------------------------------------------- ack
+
+def cmd_ack(args) -> int:
+    cfg = with_overrides(live_config(args.config), args.broker)
+    unit, _, bed = args.bed.rpartition("/")
+    if not unit:
+        if len(cfg.units) == 1:
+            unit = cfg.units[0].id
+        else:
+            print("error: --bed needs UNIT/BED (the configuration does not name exactly one "
+                  "unit)", file=sys.stderr)
+            return 2
+    if not (ID_RE.match(unit) and ID_RE.match(bed)):
+        print(f"error: --bed {args.bed!r}: unit and bed must be 1-32 characters of "
+              "A-Z a-z 0-9 - _", file=sys.stderr)
+        return 2
+    action = "pause_audio" if args.pause_audio else "acknowledge"
+    try:
+        body = command_body(action, args.alarm, args.by, time.time())
+    except ValidationError as e:
+        print(f"error: {e.errors(include_url=False)[0]['loc'][0]}: "
+              f"{e.errors(include_url=False)[0]['msg']}", file=sys.stderr)
+        return 2
+    cmd_topic = topic(unit, bed, "cmd")
+    client_id = f"hemostream-ack-{os.getpid()}"
+    try:
+        t = MqttTransport(cfg.broker.model_copy(update={"client_id": client_id}),
+                          persistent=False)
+    except BrokerSettingsError as e:
+        print(f"error: {e}", file=sys.stderr)
+        return 2
+
+    async def send() -> None:
+        await t.connect()
+        try:
+            await t.publish_wait(cmd_topic, encode(body), 1, False, timeout=10)
+        finally:
+            await t.disconnect()
+
+    try:
+        asyncio.run(send())
+    except TransportError as e:
+        print(f"error: {e}", file=sys.stderr)
+        return 1
+    print(f"sent {action} of {args.alarm!r} on {unit}/{bed} by {args.by} to {t.address}; "
+          "hemostream stores it for audit and publishes the new alarm state on "
+          f"{topic(unit, bed, 'alarm')}")
+    return 0
+
+
+# --------------------------------------------------------------------------- demo
+
+def cmd_demo(args) -> int:
+    cfg = with_overrides(live_config(args.config))
+    db = args.db or "sqlite:///hemostream-demo.db"
+    setup_logging("DEBUG" if args.verbose else "WARNING")
+    if db.startswith("sqlite:///"):
+        Path(db[len("sqlite:///"):]).parent.mkdir(parents=True, exist_ok=True)
+    dashboard = not args.plain and sys.stdout.isatty() and sys.stdin.isatty()
+    result = asyncio.run(run_demo(cfg, db, speed=args.speed, duration_s=args.duration,
+                                  scenario=args.scenario, seed=args.seed,
+                                  broker_url=args.broker, every_s=args.every,
+                                  dashboard=dashboard, operator=args.operator))
+    if result.get("fatal"):
+        print(f"error: {result['fatal']}", file=sys.stderr)
+    return result["exit"]
+
+
+# --------------------------------------------------------------------------- watch
+
+def cmd_watch(args) -> int:
+    cfg = with_overrides(load_for_command(args.config), broker=args.broker)
+    if not ID_RE.match(args.unit):
+        print(f"error: --unit {args.unit!r}: 1-32 characters of A-Z a-z 0-9 - _",
+              file=sys.stderr)
+        return 2
+    if args.once is None and not sys.stdout.isatty():
+        print("error: the live dashboard needs a terminal; use --once SECONDS for text",
+              file=sys.stderr)
+        return 2
+    try:
+        w, h = (int(x) for x in args.size.lower().split("x"))
+    except ValueError:
+        print(f"error: --size {args.size!r}: expected WIDTHxHEIGHT, e.g. 120x40",
+              file=sys.stderr)
+        return 2
+    try:
+        return run_watch(cfg, args.unit, args.operator, args.once, (w, h))
+    except BrokerSettingsError as e:
+        print(f"error: {e}", file=sys.stderr)
+        return 2
+
+
+# --------------------------------------------------------------------------- simulate
+
+def publish_lines(lines, url: str, speed: float | None) -> int:
+    """``simulate --publish``: stream recording lines to a broker at QoS 1 (the live shell)."""
+    try:
+        s = asyncio.run(publish_recording_lines(lines, url, speed))
+    except TransportError as e:
+        err.print(f"[red]error:[/] {e}", highlight=False)
+        return 1
+    except KeyboardInterrupt:
+        return 130
+    err.print(f"published {s.published} messages to {url}")
+    return 0
+
+
+# --------------------------------------------------------------------------- parsers
+
+def add_store_parsers(sub) -> None:
+    """``replay``, ``query``, ``check-config``."""
+    r = sub.add_parser("replay", help="push a recording through the pipeline into a database",
+                       description="Replay a recording (JSON Lines, one MQTT message per line) "
+                       "through the processing core and store the results. Bad lines become "
+                       "rejects with a reason; the exit status is 0 unless the file or the "
+                       "database cannot be used.", epilog=CAUTION)
+    r.add_argument("recording", help="recording file (.jsonl)")
+    r.add_argument("--config", metavar="FILE", help="TOML configuration (default: built-in "
+                   "defaults, see configs/default.toml)")
+    r.add_argument("--db", metavar="URL", help="database URL, e.g. sqlite:///ward.db or "
+                   "postgresql+psycopg://127.0.0.1/test (default: the config's store.url)")
+    r.add_argument("--speed", type=float, metavar="N", help="pace the replay at N x real "
+                   "time (default: as fast as possible)")
+    r.add_argument("--json", action="store_true", help="print the summary as JSON")
+    r.add_argument("--quiet", action="store_true", help="no progress bar")
+    r.set_defaults(func=cmd_replay)
+
+    q = sub.add_parser("query", help="list stored rows", description="List stored rows, "
+                       "oldest first. Times are RFC 3339 UTC; values are in canonical units. "
+                       "The table shows the main columns; jsonl and csv carry every field "
+                       "(provenance of derived values, alarm details, rejected bytes).")
+    q.add_argument("kind", choices=query.KINDS)
+    q.add_argument("--db", metavar="URL", help="database URL (default: the config's store.url)")
+    q.add_argument("--config", metavar="FILE", help="TOML configuration")
+    q.add_argument("--bed", metavar="BED", help="bed id, or UNIT/BED")
+    q.add_argument("--param", metavar="P", help="parameter (or rule id for alarms)")
+    q.add_argument("--since", metavar="TIME", help="RFC 3339 time, e.g. 2026-12-01T08:00:00Z")
+    q.add_argument("--limit", type=int, metavar="N", help="at most N rows")
+    q.add_argument("--format", choices=("table", "jsonl", "csv"), default="table")
+    q.set_defaults(func=cmd_query)
+
+    c = sub.add_parser("check-config", help="validate configuration files",
+                       description="Report every problem in the given TOML configuration "
+                       "files with its file, key and what was expected.")
+    c.add_argument("files", nargs="+", metavar="FILE")
+    c.set_defaults(func=cmd_check_config)
+
+
+def add_live_parsers(sub) -> None:
+    """``run``, ``ack``, ``demo``."""
+    r = sub.add_parser(
+        "run", help="the live service: subscribe to a broker, store, derive, alarm, publish",
+        description="Subscribe at QoS 1 with a persistent session to the obs, admit, note and "
+        "cmd topics of the configured units; acknowledge each message to the broker only "
+        "after it is stored; publish derived values, alarm state and events, and health. "
+        "Stops cleanly on Ctrl-C or SIGTERM. The broker password comes from the environment "
+        "variable or file named in the configuration, never from the command line.",
+        epilog=CAUTION)
+    r.add_argument("--config", metavar="FILE", help="TOML configuration (default: the shipped "
+                   "configs/default.toml: every unit, default rules and limits)")
+    r.add_argument("--broker", metavar="URL", help="mqtt://host:port or mqtts://host:port "
+                   "(overrides broker.url; a user name may go before the host, a password "
+                   "never)")
+    r.add_argument("--db", metavar="URL", help="database URL (overrides store.url)")
+    r.add_argument("--log-level", default="info",
+                   choices=("debug", "info", "warning", "error"))
+    r.set_defaults(func=cmd_run)
+
+    a = sub.add_parser("ack", help="acknowledge (or pause the audio of) an alarm over MQTT",
+                       description="Publish one command on hemo/<unit>/<bed>/cmd at QoS 1; "
+                       "hemostream stores it for audit with who sent it and what became of "
+                       "it.", epilog=CAUTION)
+    a.add_argument("--bed", required=True, metavar="UNIT/BED",
+                   help="the bed, e.g. SDU4/bed-02 (BED alone when the config has one unit)")
+    a.add_argument("--alarm", required=True, metavar="ID",
+                   help="alarm id as published on the alarm topic, or a rule id")
+    a.add_argument("--by", required=True, metavar="NAME", help="who acknowledges")
+    a.add_argument("--pause-audio", action="store_true",
+                   help="pause the alarm's audio instead of acknowledging it")
+    a.add_argument("--broker", metavar="URL", help="broker URL (overrides broker.url)")
+    a.add_argument("--config", metavar="FILE",
+                   help="configuration with the broker section (credentials, TLS files)")
+    a.set_defaults(func=cmd_ack)
+
+    d = sub.add_parser("demo", help="a simulated ward through the live pipeline, no broker "
+                       "needed", description="Stream a simulated ward through the same "
+                       "pipeline as `run` (an in-process broker by default), store it in a "
+                       "SQLite file and show a live summary. Ctrl-C ends it cleanly.",
+                       epilog=CAUTION)
+    d.add_argument("--db", metavar="URL",
+                   help="database URL (default: sqlite:///hemostream-demo.db)")
+    d.add_argument("--broker", metavar="URL", help="run the demo through this real broker")
+    d.add_argument("--config", metavar="FILE", help="TOML configuration (default: shipped)")
+    d.add_argument("--speed", type=float, default=10.0, metavar="N",
+                   help="N x real time (default 10; 1 for real time)")
+    d.add_argument("--duration", type=float, metavar="SECONDS",
+                   help="stop after this much of the scenario (default: all of it)")
+    d.add_argument("--scenario", metavar="NAME", help="simulator scenario (default: the "
+                   "demo ward)")
+    d.add_argument("--seed", type=int, default=0)
+    d.add_argument("--every", type=float, default=2.0, metavar="SECONDS",
+                   help="how often the summary is printed (wall clock)")
+    d.add_argument("--plain", action="store_true", help="print the compact summary even "
+                   "on a terminal (instead of the unit dashboard)")
+    d.add_argument("--operator", metavar="NAME", help="name sent with acknowledge / pause "
+                   "audio from the dashboard (stored for audit)")
+    d.add_argument("-v", "--verbose", action="store_true", help="log the pipeline too")
+    d.set_defaults(func=cmd_demo)
+
+
+def add_watch_parser(sub) -> None:
+    """``watch``."""
+    w = sub.add_parser(
+        "watch", help="show a unit's live dashboard from the broker (read-only)",
+        description="The unit dashboard on any machine: subscribes to the service's alarm "
+                    "and derived topics of one unit (subscribe rights are enough). The keys "
+                    "a and p acknowledge or pause the audio of the selected alarm by "
+                    "publishing a cmd message, as 'hemostream ack' does.", epilog=CAUTION)
+    w.add_argument("--broker", metavar="URL", help="mqtt://host:port or mqtts://host:port "
+                   "(default: the config's broker.url)")
+    w.add_argument("--unit", required=True, metavar="U", help="unit id, e.g. SDU4")
+    w.add_argument("--config", metavar="FILE", help="TOML configuration (broker security "
+                   "settings: username, password_env/password_file, ca_file ...)")
+    w.add_argument("--operator", metavar="NAME", help="who acknowledges (recorded for "
+                   "audit); without it the acknowledge keys are off")
+    w.add_argument("--once", type=float, metavar="SECONDS", help="collect for SECONDS, print "
+                   "one screen as text and exit (for scripts and checks)")
+    w.add_argument("--size", default="120x40", metavar="WxH",
+                   help="screen size for --once (default 120x40)")
+    w.set_defaults(func=cmd_watch)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(
+        prog="hemostream",
+        description="Hemodynamic monitoring stream processor: checks and stores bedside "
+                    "vitals messages (wire format v1), derives MAP, CI, SVR, shock index and "
+                    "more, and keeps every observation and rejected message for audit.",
+        epilog=CAUTION)
+    sub = p.add_subparsers(dest="command", metavar="COMMAND", required=True)
+    add_store_parsers(sub)
+    add_live_parsers(sub)
+    add_watch_parser(sub)
+    add_review_parsers(sub)
+    if add_simulate_parser is not None:
+        add_simulate_parser(sub, publisher=publish_lines)
+    return p
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = build_parser().parse_args(argv)
+    return args.func(args) or 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
