@@ -15,7 +15,11 @@ from datetime import datetime
 from pathlib import Path
 from typing import Any, Iterable, Iterator
 
+from ...config import ConfigError
+from ...store import StoreError
 from .config import Hl7Config, load_config, split_host_port
+from .files import pcd01_stream, replay_hl7_file, write_hl7_file
+from .mllp import send_messages
 
 
 def looks_like_hl7(path: str | Path) -> bool:
@@ -32,11 +36,9 @@ def looks_like_hl7(path: str | Path) -> bool:
 
 
 def replay_command(path: str | Path, db_url: str | None, config_path: str | None,
-                   as_json: bool = False, out=sys.stdout) -> int:
+                   as_json: bool = False, out=None) -> int:
     """``hemostream replay FILE.hl7``: 0 done, 1 store or file error, 2 bad configuration."""
-    from ...config import ConfigError
-    from ...store import StoreError
-    from .files import replay_hl7_file
+    out = out or sys.stdout
     try:
         cfg, hcfg = load_config(config_path)
     except (ConfigError, ValueError) as e:
@@ -81,8 +83,6 @@ def publisher(lines: Iterator[dict], target: str, speed: float,
               hl7_config: Hl7Config | None = None) -> int:
     """Send the ward stream as PCD-01 over MLLP to ``HOST:PORT``, each message waiting for its
     ACK (resent when none comes). Exit status 0 when every message was answered AA."""
-    from .files import pcd01_stream
-    from .mllp import send_messages
     host, port = split_host_port(target)
     hcfg = hl7_config or Hl7Config(locations_from_components=True)
     msgs = pcd01_stream(_paced(lines, speed) if speed else lines, hcfg)
@@ -99,7 +99,6 @@ def publisher(lines: Iterator[dict], target: str, speed: float,
 def write_command(lines: Iterable[dict[str, Any]], out: str,
                   hl7_config: Hl7Config | None = None) -> int:
     """``simulate --format hl7 --out FILE`` ('-' = standard output): the count written."""
-    from .files import write_hl7_file
     if out == "-":
         return write_hl7_file(lines, sys.stdout, hl7_config)
     return write_hl7_file(lines, out, hl7_config)

@@ -1,6 +1,7 @@
 """``[intake.hl7]``: the settings of the HL7 v2 (IHE PCD-01) intake.
 
-Kept free of other hemostream imports so that it can move into ``core/config.py`` as it is.
+:class:`Hl7Config` and its helpers use only pydantic, so they can move into
+``core/config.py`` as they are; :func:`load_config` is the shell part.
 """
 
 from __future__ import annotations
@@ -11,6 +12,9 @@ from pathlib import Path
 from typing import Annotated, Any
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator
+
+from ...config import parse_config
+from ...core.config import Config
 
 _STRICT = ConfigDict(extra="forbid")
 _NAME = r"^[A-Za-z0-9_-]{1,32}$"
@@ -118,8 +122,6 @@ def split_config(data: dict[str, Any]) -> tuple[dict[str, Any], Hl7Config]:
 
 def load_config(path: str | Path | None):
     """(Config, Hl7Config) from a TOML file (None: the built-in defaults)."""
-    from ...config import parse_config
-    from ...core.config import Config
     if path is None:
         return Config(), Hl7Config()
     with open(path, "rb") as f:

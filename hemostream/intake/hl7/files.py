@@ -17,6 +17,8 @@ from typing import IO, Any, Iterable, Iterator
 
 from ...core.config import Config
 from ...core.processor import Processor
+from ...pipeline import make_rules
+from ...store import Writer, load_resume, open_engine, rows_of
 from .config import Hl7Config
 from .mapping import feed_hl7, format_dtm, map_message, Hl7Error
 from .mllp import escape
@@ -76,8 +78,6 @@ def replay_hl7_file(path: str | Path, db_url: str | None = None,
     The arrival time of a message is its MSH-7 (the file has no other), else its
     measurement time, so a file replays to the same stored results every time.
     """
-    from ...replay import make_rules
-    from ...store import Writer, load_resume, open_engine, rows_of
     cfg = config or Config()
     hcfg = hl7_config or Hl7Config()
     url = db_url or cfg.store.url

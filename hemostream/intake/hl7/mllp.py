@@ -26,11 +26,14 @@ import uuid
 from datetime import datetime, timezone
 from typing import Any, Awaitable, Callable
 
-from hl7.mllp import start_hl7_server
+import hl7 as _hl7
+from hl7.mllp import open_hl7_connection, start_hl7_server
 
 from ...core.config import Config
 from ...core.processor import Processor
-from .config import Hl7Config, split_host_port
+from ...pipeline import make_rules
+from ...store import Writer, load_resume, open_engine, rows_of
+from .config import Hl7Config, load_config, split_host_port
 from .mapping import ERROR_CODES, Outcome, feed_hl7, normalise
 
 log = logging.getLogger("hemostream.hl7")
@@ -235,7 +238,6 @@ class Hl7Intake:
             await self._flush_locked()
 
     async def _flush_locked(self) -> None:
-        from ...store import rows_of
         self._flush_scheduled = False
         waiting, self._waiting = self._waiting, []
         if not waiting and not self.proc.out.row_count() and not self.proc.out.publish:
@@ -287,8 +289,6 @@ async def serve(db_url: str, host: str, port: int, *, config: Config | None = No
     The stand-alone form of the intake (tests, a separate process); ``hemostream run`` would
     share its own processor and writer instead (see docs/hl7.md).
     """
-    from ...replay import make_rules
-    from ...store import Writer, load_resume, open_engine
     cfg = config or Config()
     hcfg = hl7_config or Hl7Config()
     engine = open_engine(db_url)
@@ -338,8 +338,6 @@ async def send_messages(host: str, port: int, messages: Any, *,
     connection or a missing ACK the message is sent again (at-least-once, as a gateway does;
     the listener drops the repeat as a duplicate). Returns the count of each MSA-1 code.
     For ``simulate --publish-hl7 HOST:PORT``."""
-    from hl7.mllp import open_hl7_connection
-    import hl7 as _hl7
     counts: dict[str, int] = {}
     reader = writer = None
     for i, text in enumerate(messages):
@@ -372,7 +370,6 @@ async def send_messages(host: str, port: int, messages: Any, *,
 
 def main(argv: list[str] | None = None) -> int:
     """``python -m hemostream.intake.hl7.mllp --db URL --listen HOST:PORT [--config FILE]``"""
-    from .config import load_config
     ap = argparse.ArgumentParser(prog="python -m hemostream.intake.hl7.mllp",
                                  description="HL7 v2 MLLP listener into a hemostream store")
     ap.add_argument("--db", required=True, help="database URL")
