@@ -279,6 +279,35 @@ def _resolve(futs: list[asyncio.Future]) -> None:
             f.set_result(None)
 
 
+class Hl7ServiceIntake:
+    """The MLLP listener as an intake of the live service (``hemostream run --hl7-listen``).
+
+    ``submit(feed)`` is the service's hook that runs ``feed(processor, rx)`` on its processing
+    loop and returns once the batch holding the rows is committed (``Service.submit_external``,
+    see docs/hl7.md); the service calls :meth:`start` once its processor and writer exist and
+    :meth:`close` first thing when it stops.
+    """
+
+    def __init__(self, submit: Callable[[Callable[[Processor, float], Any]], Awaitable[Any]],
+                 cfg: Hl7Config, listen: str, *, ssl: _ssl.SSLContext | None = None) -> None:
+        self.submit = submit
+        self.cfg = cfg
+        self.listen = listen
+        self.server = MllpServer(self.handle, cfg, ssl=ssl)
+        self.bound: tuple[str, int] | None = None
+
+    async def handle(self, frame: bytes) -> Outcome:
+        cfg = self.cfg
+        return await self.submit(lambda proc, rx: feed_hl7(proc, frame, rx, cfg, source="mllp"))
+
+    async def start(self) -> None:
+        self.bound = await self.server.start(*split_host_port(self.listen))
+        log.info("HL7 MLLP listener on %s:%d", *self.bound)
+
+    async def close(self) -> None:
+        await self.server.close()
+
+
 async def serve(db_url: str, host: str, port: int, *, config: Config | None = None,
                 hl7_config: Hl7Config | None = None, ssl: _ssl.SSLContext | None = None,
                 rules: Any = "default", stop: asyncio.Event | None = None,
