@@ -2,13 +2,12 @@
 
 from __future__ import annotations
 
-from typing import Any
-
 from .core.config import Config
 from .core.rules import RulesEngine
+from .core.rules.protocol import RulesLayer
 
 
-def make_rules(cfg: Config) -> Any:
+def make_rules(cfg: Config) -> RulesLayer | None:
     """The rules engine for ``cfg`` (None when ``[rules] enabled = false``)."""
     if not cfg.rules.enabled:
         return None

@@ -6,12 +6,13 @@ import json
 import time as _time
 from dataclasses import dataclass, fields
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any, Callable, Literal
 
 from pydantic import BaseModel, ConfigDict, StrictStr, ValidationError
 
 from .core.config import Config
 from .core.processor import Counters, Processor, RecordingLineBytes
+from .core.rules.protocol import RulesLayer
 from .core.wire import ObsMessage, Time, epoch, parse_time
 from .pipeline import make_rules
 from .store import Writer, load_resume, open_engine, rows_of
@@ -108,7 +109,7 @@ def feed_line(proc: Processor, line: bytes, lineno: int, max_bytes: int) -> floa
 def replay_file(path: str | Path, db_url: str | None = None, config: Config | None = None, *,
                 speed: float | None = None,
                 progress: Callable[[int, int], None] | None = None,
-                rules: Any = "default") -> ReplaySummary:
+                rules: RulesLayer | None | Literal["default"] = "default") -> ReplaySummary:
     """Replay ``path`` into ``db_url`` (default: the config's store URL).
 
     ``speed`` paces the replay at N x real time (by arrival times); None is as fast as

@@ -14,11 +14,13 @@ import os
 import subprocess
 import sys
 import textwrap
+from functools import partial
 
 import pytest
+from streams import of_rule, stream as _stream, transitions
 
 from hemostream.core.rules import CommandError, RuleEvent, RulesEngine
-from hemostream.core.rules_config import AlarmConfig, RulesConfig
+from hemostream.core.rules.config import AlarmConfig, RulesConfig
 
 BED = "WARD7/bed-01"
 OTHER = "WARD7/bed-02"
@@ -27,26 +29,9 @@ T0 = 1_800_000_000.0
 CALM = {"HR": 72.0, "SPO2": 97.0, "MAP": 88.0, "SBP": 120.0, "SI": 0.6}
 
 
-def stream(eng, start, end, fn, *, bed=BED, device=DEV, tick=True, step=1.0):
-    out = []
-    k = 0
-    while start + k * step < end:
-        t = start + k * step
-        v = fn(t)
-        if v:
-            out += eng.on_values(bed, t, v, frozenset(v), {}, device)
-        if tick:
-            out += eng.tick(t + 0.5)
-        k += 1
-    return out
-
-
-def only(evs, rule):
-    return [e for e in evs if e.rule == rule]
-
-
-def trans(evs, rule=None):
-    return [e.transition for e in evs if rule is None or e.rule == rule]
+stream = partial(_stream, bed=BED, device=DEV)
+only = of_rule
+trans = transitions
 
 
 def vals(**over):
@@ -445,7 +430,7 @@ def test_damped_trace_keeps_the_mean_and_drops_the_systolic():
     assert only(evs, "SBP_low") == []
     assert [e.details["channels"] for e in only(evs, "artifact_suspected")
             if e.transition == "raised"] == [["ABP"]]
-    excl = eng.art.excluded(eng._beds[BED].art, T0 + 699)
+    excl = eng.art.excluded(eng.bed_state(BED).art, T0 + 699)
     assert {"ABP_SYS", "SBP", "SI"} <= excl and "MAP" not in excl
 
 

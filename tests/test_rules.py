@@ -11,13 +11,15 @@ from __future__ import annotations
 
 import random
 import tomllib
+from functools import partial
 from pathlib import Path
 
 import pytest
 from pydantic import ValidationError
+from streams import stream
 
 from hemostream.core.rules import RulesEngine
-from hemostream.core.rules_config import RulesConfig
+from hemostream.core.rules.config import RulesConfig
 
 BED = "WARD7/bed-03"
 DEV = "gw-w7-03"
@@ -46,17 +48,7 @@ def patient(hr, sbp, dbp, cvp, co, *, pawp=None, rng=None, noise=1.0):
 STABLE = dict(hr=72, sbp=120, dbp=70, cvp=6, co=5.5)
 
 
-def run(eng, start, end, fn, *, step=1.0, bed=BED, device=DEV):
-    out = []
-    k = 0
-    while start + k * step < end:
-        t = start + k * step
-        v = fn(t)
-        if v:
-            out += eng.on_values(bed, t, v, frozenset(v), {}, device)
-        out += eng.tick(t + 0.5)
-        k += 1
-    return out
+run = partial(stream, bed=BED, device=DEV)
 
 
 def raised(evs, rule):
@@ -393,8 +385,8 @@ def test_calibrating_status_excludes_the_channel():
         if 60 <= k < 70:
             nonvalid = {"ABP_MEAN": "calibrating"}
         evs += eng.on_values(BED, t, v, frozenset(v), nonvalid, DEV)
-    assert eng.art.excluded(eng._beds[BED].art, T0 + 65) >= {"MAP", "ABP_MEAN", "SI"}
-    assert "CVP" not in eng.art.excluded(eng._beds[BED].art, T0 + 65)
+    assert eng.art.excluded(eng.bed_state(BED).art, T0 + 65) >= {"MAP", "ABP_MEAN", "SI"}
+    assert "CVP" not in eng.art.excluded(eng.bed_state(BED).art, T0 + 65)
 
 
 # --------------------------------------------------------------------------- dashboard
@@ -461,3 +453,39 @@ def test_invalid_config_names_the_key(data, where):
 def test_disabled_rules_do_nothing():
     eng = RulesEngine(RulesConfig(enabled=False))
     assert run(eng, T0, T0 + 100, lambda t: {"HR": 200.0}) == []
+
+
+# --------------------------------------------------------------------------- limit merge rule
+
+
+def test_applied_limits_merges_an_admission_over_the_configuration():
+    # the wire format's admit example (/work/shared/wire-format.md): {"HR": {"high": 120},
+    # "ABP_SYS": {"low": 95}} overrides the configured limits for that bed only
+    from hemostream.core.rules.limits import applied_limits
+    cfg = RulesConfig()
+    conf = cfg.limits
+    got = applied_limits(conf, {"HR": {"high": 120}, "ABP_SYS": {"low": 95}})
+    # a side the admission gives replaces the configured side, the other side stays
+    assert got["HR"] == {"low": conf["HR"].low, "high": 120.0}
+    # a parameter only the admission limits gets the side it gives, after the configured ones
+    assert got["ABP_SYS"] == {"low": 95.0}
+    assert list(got) == list(conf) + ["ABP_SYS"]
+    # every other configured parameter is untouched
+    for p, rule in conf.items():
+        if p != "HR":
+            assert got[p] == {s: getattr(rule, s) for s in ("low", "high")
+                              if getattr(rule, s) is not None}
+    # no admission, an empty one, and None / unknown keys: the configuration as it is
+    assert applied_limits(conf) == applied_limits(conf, {}) == applied_limits(
+        conf, {"HR": {"high": None, "priority": "high"}})
+
+
+def test_the_engine_alarms_at_the_applied_limits():
+    from hemostream.core.rules.limits import applied_limits
+    eng = RulesEngine()
+    eng.on_admit(BED, T0, {"HR": {"high": 100}})
+    lim = {(x.param, x.side): x.threshold for x in eng.bed_state(BED).limits}
+    want = applied_limits(eng.cfg.limits, {"HR": {"high": 100}})
+    assert lim == {(p, s): v for p, sides in want.items() for s, v in sides.items()}
+    evs = run(eng, T0, T0 + 60, lambda t: patient(**{**STABLE, "hr": 110}))
+    assert raised(evs, "HR_high") and raised(evs, "HR_high")[0].details["limit"] == 100.0

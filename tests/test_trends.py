@@ -1,5 +1,6 @@
-"""Trend estimator: Theil-Sen over bucket medians, checked against scipy (an independent
-implementation) and against properties published with the method."""
+"""Trend estimator: Theil-Sen over bucket points (each the interquartile, i.e. 25 % trimmed,
+mean of its bucket), checked against scipy (an independent implementation) and against
+properties published with the method."""
 
 from __future__ import annotations
 

@@ -39,14 +39,59 @@ only one.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Any, Callable
+from typing import Annotated, Any, Callable, Final, Literal
 
-from .rules_config import AlarmConfig
+from pydantic import BaseModel, ConfigDict, Field, field_validator
 
-PRIORITY_RANK = {"info": 0, "low": 1, "medium": 2, "high": 3}
+#: alarm priorities (IEC 60601-1-8), as configured on a rule
+Priority = Literal["high", "medium", "low"]
+#: priority of a lifecycle event: an alarm priority, or ``info`` for information results
+EventPriority = Literal["high", "medium", "low", "info"]
+Category = Literal["physiological", "technical", "information"]
+#: lifecycle transitions (see the table above) and information results
+Transition = Literal["raised", "updated", "escalated", "acknowledged", "audio_paused",
+                     "reannounced", "condition_ended", "cleared", "opened", "result",
+                     "profile"]
+#: the one ordering of priorities (higher is more urgent); the dashboard imports it too
+PRIORITY_RANK: Final[dict[str, int]] = {"info": 0, "low": 1, "medium": 2, "high": 3}
 
 
-@dataclass(frozen=True)
+class AlarmConfig(BaseModel):
+    """Alarm lifecycle (IEC 60601-1-8 terms: priority, latching, acknowledged, audio paused).
+
+    The ``[rules.alarms]`` table; :mod:`.rules.config` re-exports it with the other slices.
+    """
+
+    model_config = ConfigDict(extra="forbid")
+    #: whether an alarm of a priority stays after its condition ended, until acknowledged
+    latching: dict[Priority, bool] = Field(
+        default_factory=lambda: {"high": True, "medium": False, "low": False})
+    #: an acknowledged alarm whose condition is still present is announced again after this
+    #: (None: stays silent until the condition ends)
+    acknowledge_s: Annotated[float, Field(gt=0)] | None = 600.0
+    #: audio pause length; an alarm still present afterwards is announced again
+    audio_pause_s: Annotated[float, Field(gt=0)] = 120.0
+    #: a medium alarm still present and not acknowledged this long becomes high priority
+    #: (None: no escalation)
+    escalate_medium_after_s: Annotated[float, Field(gt=0)] | None = 600.0
+    escalate_categories: list[Literal["physiological", "technical"]] = Field(
+        default_factory=lambda: ["physiological"])
+    #: acknowledging a technical alarm clears it, and its silent feeds or devices are not
+    #: watched again until they send (a removed line is not announced every few minutes)
+    acknowledge_clears_technical: bool = True
+    #: a condition delay matures on a clock tick (without a new sample) only if the last
+    #: evaluation of the condition is at most this old
+    tick_maturation_max_age_s: Annotated[float, Field(gt=0)] = 120.0
+
+    @field_validator("latching")
+    @classmethod
+    def _all(cls, v: dict[str, bool]) -> dict[str, bool]:
+        full = {"high": True, "medium": False, "low": False}
+        full.update(v)
+        return full
+
+
+@dataclass(frozen=True, slots=True)
 class RuleEvent:
     """One lifecycle transition or information result, as stored and published."""
 
@@ -54,9 +99,9 @@ class RuleEvent:
     bed: str
     alarm_id: str
     rule: str
-    priority: str            # high | medium | low | info
-    category: str            # physiological | technical | information
-    transition: str
+    priority: EventPriority
+    category: Category
+    transition: Transition
     value: float | None = None
     details: dict[str, Any] = field(default_factory=dict)
     by: str | None = None
@@ -83,7 +128,7 @@ class Alarm:
                  "details", "signature", "present", "acknowledged", "acknowledged_by",
                  "ack_until", "paused_until", "escalated", "message", "unacked_since")
 
-    def __init__(self, aid: str, bed: str, rule: str, priority: str, category: str,
+    def __init__(self, aid: str, bed: str, rule: str, priority: Priority, category: Category,
                  latching: bool, since: float, value: float | None, details: dict,
                  signature: Any, message: str) -> None:
         self.id = aid
@@ -134,12 +179,6 @@ class AlarmBook:
         d = self._active.get(bed)
         return d.get(rule) if d else None
 
-    def present_rank(self, bed: str, rule: str) -> int:
-        """Priority rank of the rule's alarm if its condition is present, else 0."""
-        d = self._active.get(bed)
-        a = d.get(rule) if d else None
-        return PRIORITY_RANK[a.priority] if a is not None and a.present else 0
-
     def active(self, bed: str) -> list[Alarm]:
         d = self._active.get(bed)
         if not d:
@@ -162,14 +201,14 @@ class AlarmBook:
         self._count[(bed, rule)] = n
         return f"{rule}@{bed}#{n}"
 
-    def _ev(self, a: Alarm, t: float, transition: str, by: str | None = None,
+    def _ev(self, a: Alarm, t: float, transition: Transition, by: str | None = None,
             details: dict | None = None) -> RuleEvent:
         return RuleEvent(t, a.bed, a.id, a.rule, a.priority, a.category, transition, a.value,
                          dict(a.details if details is None else details), by)
 
     # ------------------------------------------------------------------ from the rules
 
-    def condition(self, bed: str, rule: str, t: float, priority: str, category: str,
+    def condition(self, bed: str, rule: str, t: float, priority: Priority, category: Category,
                   value: float | None, details: dict, *, latching: bool | None = None,
                   signature: Any = None, message: str = "") -> list[RuleEvent]:
         """The rule's condition holds (its delay has passed) at ``priority``."""

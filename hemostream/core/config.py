@@ -10,7 +10,7 @@ from typing import Annotated, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 
-from .rules_config import RulesConfig
+from .rules.config import RulesConfig
 from .wire import ID_RE, PARAMS
 
 _STRICT = ConfigDict(extra="forbid")

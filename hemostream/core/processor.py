@@ -21,6 +21,7 @@ from pydantic import ValidationError
 
 from .config import Config
 from .derive import DERIVED_UNITS, Current, derive_all, bsa_dubois, bsa_mosteller
+from .rules.protocol import RulesLayer
 from .units import BY_DIMENSION, CANONICAL, UNITS
 from .wire import (PARAMS, PAYLOAD_MODELS, TOPIC_KINDS_OUT, AdmitMessage, CommandMessage,
                    NoteMessage, ObsMessage, TopicError, parse_topic)
@@ -216,7 +217,7 @@ class Reject(Exception):
 class Processor:
     """Wire format in, rows and published messages out. Not thread-safe; one per worker."""
 
-    def __init__(self, config: Config | None = None, *, rules: Any = None,
+    def __init__(self, config: Config | None = None, *, rules: RulesLayer | None = None,
                  publish: bool = True,
                  next_ids: dict[str, int] | None = None,
                  known_beds: Iterable[tuple[int, str, str]] = (),

@@ -4,13 +4,16 @@ Method
 ------
 Samples of one parameter are reduced to one point per fixed time bucket (``bucket_s``,
 aligned to multiples of it in epoch time): the point is the **interquartile mean** of the
-bucket's values (the mean of the middle half after sorting; the median for fewer than four
-values) at the mean of their times. Like the median it ignores a spike or two; unlike the
-median it resolves changes smaller than the device's display resolution, because noise
-dithers whole-number readings (a CVP sent as 6, 7, 6, 6, 7 ... averages 6.4, its median is 6)
-(trimmed means: common practice in robust statistics, e.g. Tukey's trimean family; from
-memory). The trend is the **Theil-Sen slope** of the bucket points inside the window: the
-median of the slopes of all pairs of points.
+bucket's values, i.e. the **25 % trimmed mean** (sort, drop ``n // 4`` values at each end,
+average the middle half; the same number as ``scipy.stats.trim_mean(values, 0.25)``, which
+the tests check it against; the median for fewer than four values), at the mean of their
+times. Buckets are *not* medians: like the median the trimmed mean ignores a spike or two;
+unlike the median it resolves changes smaller than the device's display resolution, because
+noise dithers whole-number readings (a CVP sent as 6, 7, 6, 6, 7 ... averages 6.4, its median
+is 6) (trimmed means as robust estimators of location: common practice in robust
+statistics, e.g. Wilcox RR, Introduction to Robust Estimation and Hypothesis Testing;
+from memory). The trend is the **Theil-Sen slope** of the bucket points
+inside the window: the median of the slopes of all pairs of points.
 
 - Theil H, "A rank-invariant method of linear and polynomial regression analysis",
   Proc. Koninklijke Nederlandse Akademie van Wetenschappen 1950;53:386-392, 521-525,
@@ -58,8 +61,9 @@ def _pairs(n: int) -> tuple[np.ndarray, np.ndarray]:
 
 
 def bucket_value(vals: list[float]) -> float:
-    """Interquartile mean: the mean of the middle half of the sorted values (for n >= 4;
-    drops ``n // 4`` values at each end), the median below four values.
+    """Interquartile (25 % trimmed) mean: the mean of the middle half of the sorted values
+    (for n >= 4; drops ``n // 4`` values at each end, as ``scipy.stats.trim_mean(vals, 0.25)``),
+    the median below four values.
 
     >>> bucket_value([6, 7, 6, 6, 7, 6, 300, 6])     # the spike is dropped
     6.25
@@ -135,7 +139,8 @@ class TrendReading:
 
 
 class RobustTrend:
-    """Theil-Sen trend of one parameter over bucket points (see the module docstring).
+    """Theil-Sen trend of one parameter over bucket points, each the interquartile (25 %
+    trimmed) mean of its bucket (see the module docstring).
 
     >>> tr = RobustTrend(window_s=600, bucket_s=15, min_points=12)
     >>> for k in range(600):           # 10 minutes at 1 Hz, rising 0.01 per second
@@ -146,8 +151,8 @@ class RobustTrend:
     """
 
     __slots__ = ("window_s", "bucket_s", "min_points", "min_span_s", "gap_reset_s",
-                 "stale_after_s", "step_reset", "_t", "_v", "_bucket", "_bt", "_bv", "_reading", "_dirty",
-                 "open_start", "open_end")
+                 "stale_after_s", "step_reset", "_t", "_v", "_bucket", "_bt", "_bv", "_reading",
+                 "_dirty", "open_start", "open_end")
 
     def __init__(self, window_s: float, bucket_s: float, min_points: int,
                  min_span_fraction: float = 0.5, gap_reset_s: float = 180.0,
@@ -160,14 +165,14 @@ class RobustTrend:
         self.stale_after_s = stale_after_s
         self.step_reset = step_reset
         self._t = array("d")          # bucket point times, increasing
-        self._v = array("d")          # bucket values (interquartile means)
+        self._v = array("d")          # bucket values (interquartile, 25 % trimmed, means)
         self._bucket: int | None = None
         self._bt: list[float] = []    # open bucket: sample times ...
         self._bv: list[float] = []    # ... and values
         self._reading: TrendReading | None = None
         self._dirty = False
-        #: time range of the open bucket: a caller may append a sample in it directly with
-        #: :meth:`add_open` (the fast path of :meth:`update`)
+        #: time range of the open bucket [open_start, open_end): a sample in it is appended
+        #: at once (the fast path of :meth:`update`)
         self.open_start = float("inf")
         self.open_end = float("-inf")
 
@@ -198,11 +203,6 @@ class RobustTrend:
         self._bv = [v]
         return changed
 
-    def add_open(self, t: float, v: float) -> None:
-        """Append a sample known to lie in the open bucket (``open_start <= t < open_end``)."""
-        self._bt.append(t)
-        self._bv.append(v)
-
     def reset(self) -> None:
         """Forget the points (the trend restarts); the open bucket is dropped too."""
         del self._t[:]
@@ -224,7 +224,7 @@ class RobustTrend:
         if not vals:
             return False
         n = len(vals)
-        med = bucket_value(vals)
+        med = bucket_value(vals)          # trimmed mean, not a median (see bucket_value)
         pt = sum(self._bt) / n
         tt, vv = self._t, self._v
         if tt and (pt - tt[-1] > self.gap_reset_s or (

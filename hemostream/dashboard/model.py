@@ -15,6 +15,7 @@ from collections import deque
 from dataclasses import dataclass, field
 from typing import Any
 
+from ..core.alarms import PRIORITY_RANK
 from ..core.config import DEFAULT_MAX_AGE
 from ..core.wire import is_status_topic, split_topic
 from ..core.wire import parse_time_or_none  # None when missing or without an offset
@@ -25,7 +26,6 @@ DERIVED_MAX_AGE = 30.0
 STRIP_SECONDS = 30 * 60
 STRIP_STEP = 30.0
 
-PRIORITY_RANK = {"high": 3, "medium": 2, "low": 1, "info": 0}
 
 
 @dataclass

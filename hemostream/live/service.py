@@ -26,13 +26,14 @@ import logging
 import random
 import time
 from collections import deque
-from typing import Any, Callable
+from typing import Any, Callable, Literal
 
 from sqlalchemy import event
 from sqlalchemy.engine import make_url
 
 from ..core.config import Config
 from ..core.processor import Processor
+from ..core.rules.protocol import RulesLayer
 from ..core.wire import encode, format_epoch, input_filters
 from ..core.wire import status_topic as instance_status_topic
 from ..pipeline import make_rules
@@ -177,7 +178,8 @@ class Service:
     """``hemostream run`` (and the demo): run until :meth:`stop`, then shut down cleanly."""
 
     def __init__(self, cfg: Config, transport: Transport, *, db_url: str | None = None,
-                 rules: Any = "default", clock: Callable[[], float] = time.time,
+                 rules: RulesLayer | None | Literal["default"] = "default",
+                 clock: Callable[[], float] = time.time,
                  log_health: bool = True,
                  on_health: Callable[[dict], None] | None = None) -> None:
         self.cfg = cfg

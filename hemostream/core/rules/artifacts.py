@@ -1,4 +1,4 @@
-"""Artifact spans: values that must not make trends, alarms or fluid-challenge results.
+"""Artifact spans (configuration and detector): values that must not make trends, alarms or fluid-challenge results.
 
 Three sources, per pressure *channel* (ABP, CVP, PAP, PAWP, NIBP; each with the parameters a
 flush or zeroing of it spoils, derived ones included):
@@ -31,8 +31,105 @@ condition ``artifact_suspected`` (a damped, clotted or open line; a zeroing left
 
 from __future__ import annotations
 
-from .rules_config import ArtifactConfig
-from .wire import PARAMS
+from typing import Annotated, Literal
+
+from pydantic import BaseModel, Field, model_validator
+
+from ..wire import PARAMS
+from .common import STRICT, PosSeconds, Priority, Seconds, Span, check_params
+
+__all__ = ["ArtifactConfig", "ArtifactState", "ArtifactDetector"]
+
+
+# --------------------------------------------------------------------------- configuration
+
+
+def _default_channels() -> dict[str, list[str]]:
+    # A pressure channel and every value computed from it: a flush or zeroing of the channel
+    # makes all of them wrong for its duration (derivations as in derive.py).
+    return {
+        "ABP": ["ABP_SYS", "ABP_DIA", "ABP_MEAN", "MAP", "SBP", "PP", "SVR", "SVRI", "SI",
+                "MSI", "LVSWI"],
+        "CVP": ["CVP", "SVR", "SVRI", "RVSWI"],
+        "PAP": ["PAP_SYS", "PAP_DIA", "PAP_MEAN", "PVR", "RVSWI"],
+        "PAWP": ["PAWP", "PVR", "LVSWI"],
+        "NIBP": ["NIBP_SYS", "NIBP_DIA", "NIBP_MEAN"],
+    }
+
+
+class ArtifactConfig(BaseModel):
+    """Values left out of trends, limits, patterns and fluid-challenge evaluation."""
+
+    model_config = STRICT
+    #: note kinds that open an artifact span for their ``param`` (or ``note_all_channels``)
+    note_kinds: list[Literal["line_flush", "zeroing", "sample_draw", "reposition"]] = Field(
+        default_factory=lambda: ["line_flush", "zeroing", "sample_draw"])
+    #: span length when the note gives no ``duration_s``
+    note_span_s: Seconds = 60.0
+    #: note kinds after which the trends of the note's channel restart (the reading's
+    #: reference changed: a transducer levelled again)
+    trend_reset_note_kinds: list[Literal["line_flush", "zeroing", "sample_draw",
+                                         "reposition"]] = Field(
+        default_factory=lambda: ["reposition"])
+    #: channels a note without ``param`` concerns (the invasive, transducer-based ones)
+    note_all_channels: list[str] = Field(
+        default_factory=lambda: ["ABP", "CVP", "PAP", "PAWP"])
+    #: channel -> parameters a flush/zeroing of it spoils (first entries: the measured ones)
+    channels: dict[str, list[str]] = Field(default_factory=_default_channels)
+    #: detect flush/zeroing signatures without a note
+    auto_detect: bool = True
+    #: a channel whose SYS - DIA is below this is flat (flush square wave, zeroing, damping)
+    flat_pulse_pressure: dict[str, Annotated[float, Field(ge=0)]] = Field(
+        default_factory=lambda: {"ABP": 5.0, "PAP": 2.0})
+    #: values outside these ranges are flush or zero signatures, not physiology (mm[Hg]);
+    #: tighter than ingest plausibility on purpose (common practice, from memory: a flush
+    #: reads the pressure bag, about 300 mm[Hg]; a zeroing reads 0)
+    signature_outside: dict[str, Span] = Field(default_factory=lambda: {
+        "ABP_SYS": Span(low=30, high=260), "ABP_MEAN": Span(low=15, high=220),
+        "PAP_MEAN": Span(low=3, high=80), "CVP": Span(low=-5, high=40)})
+    #: a drop to about zero (|value| <= zero_band) by at least this step from the previous
+    #: value is a zeroing signature (for mean-only channels such as CVP)
+    zero_step: dict[str, Annotated[float, Field(gt=0)]] = Field(
+        default_factory=lambda: {"CVP": 4.0})
+    zero_band: Annotated[float, Field(ge=0)] = 1.0
+    #: over-damped trace (air bubble, clot, kinked line): the pulse pressure falls below this
+    #: fraction of its slow reference while the mean stays within damping_mean_tolerance of
+    #: its own; systolic and diastolic are then wrong, the mean is not (common practice,
+    #: from memory). Channels need SYS, DIA and MEAN values.
+    damping_fraction: dict[str, Annotated[float, Field(gt=0, lt=1)]] = Field(
+        default_factory=lambda: {"ABP": 0.75})
+    damping_mean_tolerance: Annotated[float, Field(gt=0, lt=1)] = 0.15
+    #: time constant of the slow references of pulse pressure and mean (exponential average)
+    damping_reference_s: PosSeconds = 300.0
+    #: what a damped trace spoils (the rest of the channel, its mean and what is computed
+    #: from the mean, stays in use)
+    damping_spoils: dict[str, list[str]] = Field(default_factory=lambda: {
+        "ABP": ["ABP_SYS", "ABP_DIA", "SBP", "PP", "SI"]})
+    #: values stay excluded this long after a signature was last seen (ringing, refill)
+    post_hold_s: Seconds = 20.0
+    #: a signature present longer than this (outside a noted span) is the technical condition
+    #: ``artifact_suspected``
+    suspected_after_s: Seconds = 20.0
+    suspected_priority: Priority = "low"
+
+    @model_validator(mode="after")
+    def _consistent(self) -> "ArtifactConfig":
+        for ch, plist in self.channels.items():
+            check_params(plist, f"channels.{ch}")
+        unknown = [c for c in self.note_all_channels if c not in self.channels]
+        unknown += [c for c in self.flat_pulse_pressure if c not in self.channels]
+        unknown += [c for c in self.damping_fraction if c not in self.channels]
+        for ch, plist in self.damping_spoils.items():
+            check_params(plist, f"damping_spoils.{ch}")
+        if unknown:
+            raise ValueError(f"channel(s) {unknown} are not defined in channels "
+                             f"({list(self.channels)})")
+        check_params(self.signature_outside, "signature_outside")
+        check_params(self.zero_step, "zero_step")
+        return self
+
+
+# --------------------------------------------------------------------------- detector
 
 EMPTY: frozenset[str] = frozenset()
 _RECENT_S = 10.0

@@ -1,0 +1,229 @@
+"""The rules layer's engine: takes the processor's inputs and dispatches them to the feature
+modules (technical conditions, artifacts, trends, fluid challenge, limits, patterns, profile),
+whose conditions feed the alarm lifecycle of :mod:`..alarms`.
+
+Pure core: no I/O, no wall clock, no randomness. Time is passed in (float epoch seconds,
+UTC): message times to :meth:`RulesEngine.on_values` and friends, and a clock to
+:meth:`RulesEngine.tick` (event time in replay, wall clock live). The same inputs give the
+same events, every time: nothing iterates a set of strings (whose order depends on the hash
+seed); orders come from the configuration or from the arrival of inputs.
+
+Every rule and default is documented in ``docs/rules.md`` and ``configs/rules.toml``.
+
+Safety: this is a secondary display and notification aid, not a medical device; the bedside
+monitor stays the primary alarm source. The pattern rules and the profile read-out are
+prompts to look, never a diagnosis.
+
+Cost: per ``on_values`` call, O(1) work per new value of a trended, limited or watched
+parameter, plus the pattern rules whose inputs changed; a trend slope is recomputed only when
+one of its buckets closes (see :mod:`..trends`). ``tick`` pops due timers from a heap (O(log
+n) per timer) and never scans all beds.
+"""
+
+from __future__ import annotations
+
+import heapq
+from typing import Any
+
+from ..alarms import CommandError, RuleEvent
+from .artifacts import ArtifactDetector
+from .common import ARTIFACT
+from .conditions import Conditions, Spec
+from .config import RulesConfig
+from .fluid import FluidChallenge
+from .limits import Limits
+from .patterns import Patterns
+from .profile import PROFILE_TEXT, Profile, classify
+from .state import BedState, Shared
+from .technical import Technical
+from .trending import Trending
+
+__all__ = ["RulesEngine", "RuleEvent", "CommandError"]
+
+
+class RulesEngine:
+    """The rules layer behind the processor (see the module docstring and docs/rules.md).
+
+    Satisfies :class:`.protocol.RulesLayer`.
+    """
+
+    def __init__(self, cfg: RulesConfig | None = None) -> None:
+        self.cfg = cfg = cfg or RulesConfig()
+        self._sh = sh = Shared(cfg)
+        self.book = sh.book
+        self._beds: dict[str, BedState] = {}
+        self.art = ArtifactDetector(cfg.artifacts)
+        self.trending = Trending(cfg)
+        self.conditions = Conditions(sh)
+        self.limits = Limits(cfg, self.conditions)
+        self.patterns = Patterns(cfg, self.trending, self.conditions)
+        self.technical = Technical(sh, self.art)
+        self.fluid = FluidChallenge(sh)
+        self.profile = Profile(sh, self.trending)
+
+    # ================================================================== plumbing
+
+    def _bed(self, bed: str) -> BedState:
+        b = self._beds.get(bed)
+        if b is None:
+            b = self._beds[bed] = BedState(bed, self.limits.defaults)
+        return b
+
+    def bed_state(self, bed: str) -> BedState | None:
+        """The engine's state of one bed (None before its first input), for inspection."""
+        return self._beds.get(bed)
+
+    def beds(self) -> list[str]:
+        return list(self._beds)
+
+    def _spec_for(self, b: BedState, rule: str) -> Spec | None:
+        for lim in b.limits:
+            if lim.rule == rule:
+                return lim.spec
+        return self.patterns.spec(rule)
+
+    # ================================================================== inputs
+
+    def on_values(self, bed: str, t: float, fresh: dict[str, float], new: frozenset[str],
+                  nonvalid: dict[str, str], device: str) -> list[RuleEvent]:
+        """One accepted observation message, after derivations (see docs/rules.md)."""
+        if not self.cfg.enabled:
+            return []
+        b = self._beds.get(bed) or self._bed(bed)
+        ev: list[RuleEvent] = []
+        if t > b.last_t:
+            b.last_t = t
+        clock = self._sh.clock
+        seen = t if t > clock else clock
+        self.technical.on_values(b, t, seen, new, nonvalid, device, ev)
+        excluded = self.art.check(b.art, t, fresh, new, nonvalid)
+        if b.art.sig_since or self.book.get(bed, ARTIFACT) is not None:
+            ev += self.technical.artifact_alarm(b, t)
+        changed = self.trending.feed(b, t, fresh, new, excluded)
+        self.fluid.on_values(b, t, fresh, new, excluded, ev)
+        self.limits.evaluate(b, t, fresh, new, excluded, ev)
+        self.patterns.evaluate(b, t, fresh, new, changed, excluded, ev)
+        self.profile.on_values(b, t, fresh, new, changed, excluded, ev)
+        return ev
+
+    def on_note(self, bed: str, t: float, kind: str, volume_ml: float | None = None,
+                over_min: float | None = None, param: str | None = None,
+                duration_s: float | None = None) -> list[RuleEvent]:
+        if not self.cfg.enabled:
+            return []
+        ev: list[RuleEvent] = []
+        if kind in self.cfg.artifacts.trend_reset_note_kinds:
+            b = self._bed(bed)
+            for p in self.art.affected(self.art.channels_for(param)):
+                tr = b.trends.get(p)
+                if tr is not None:
+                    tr.reset()
+        if kind in self.cfg.artifacts.note_kinds:
+            b = self._bed(bed)
+            chs = self.art.note(b.art, t, param, duration_s)
+            for p in self.art.affected(chs):
+                tr = b.trends.get(p)
+                if tr is not None:
+                    tr.drop_since(t)
+            if self.book.get(bed, ARTIFACT) is not None:
+                ev += self.technical.artifact_alarm(b, t)
+        elif kind == "fluid_bolus" and self.cfg.fluid_challenge.enabled:
+            ev += self.fluid.open(self._bed(bed), t, volume_ml, over_min)
+        return ev
+
+    def on_admit(self, bed: str, t: float, limits: dict[str, dict[str, float]] | None = None,
+                 discharged: bool = False) -> list[RuleEvent]:
+        if not self.cfg.enabled:
+            return []
+        if discharged:
+            ev = self.book.clear_bed(bed, t, "discharged")
+            self._beds.pop(bed, None)
+            return ev
+        self.limits.admit(self._bed(bed), limits)
+        return []
+
+    def on_command(self, bed: str, t: float, action: str, alarm: str,
+                   by: str) -> list[RuleEvent]:
+        """Acknowledge or pause the audio of one active alarm (by alarm id or rule id)."""
+        if action == "acknowledge":
+            a = self.book.find(bed, alarm)
+            ev = self.book.acknowledge(bed, t, alarm, by)
+            b = self._beds.get(bed)
+            if a is not None and a.category == "technical" \
+                    and self.cfg.alarms.acknowledge_clears_technical and b is not None:
+                self.technical.acknowledged(b, a.rule)
+            for e in ev:
+                if e.transition == "cleared" and b is not None:
+                    self.conditions.cleared(b, e.rule)
+            return ev
+        if action == "pause_audio":
+            return self.book.pause_audio(bed, t, alarm, by)
+        raise CommandError(f"unknown action {action!r}; expected acknowledge or pause_audio")
+
+    # ================================================================== clock
+
+    def tick(self, now: float) -> list[RuleEvent]:
+        """Advance time-driven conditions to ``now`` (silent feeds and devices, delays that
+        mature without a new sample, pause and acknowledgement expiry, escalation, the end of
+        fluid-challenge windows)."""
+        sh = self._sh
+        if now > sh.clock:
+            sh.clock = now
+        ev: list[RuleEvent] = []
+        if not self.cfg.enabled:
+            return ev
+        heap = sh.heap
+        while heap and heap[0][0] <= now:
+            _, _, kind, bed, key = heapq.heappop(heap)
+            if kind in ("escalate", "silence_end"):
+                ev += self.book.on_timer(kind, bed, key, now)
+                continue
+            b = self._beds.get(bed)
+            if b is None:
+                continue
+            if kind == "feed":
+                self.technical.feed_timer(b, key, now, ev)
+            elif kind == "device":
+                self.technical.device_timer(b, key, now, ev)
+            elif kind == "cond":
+                self.conditions.on_timer(b, key, now, ev, self._spec_for)
+            elif kind == "notvalid":
+                ev += self.technical.not_valid_alarm(b, now)
+            elif kind == "fluid":
+                ev += self.fluid.on_timer(b, key, now)
+            elif kind == "profile":
+                self.profile.on_timer(b, now, ev)
+        return ev
+
+    # ================================================================== read-outs
+
+    def classify(self, levels: dict[str, float | None]) -> str | None:
+        """Profile read-out from levels of CVP, PAWP, CI and SVR (see :func:`.profile.classify`)."""
+        return classify(self.profile.ranges, levels)
+
+    def bed_view(self, bed: str) -> dict[str, Any]:
+        """Dashboard model of one bed (JSON-able)."""
+        b = self._beds.get(bed)
+        if b is None:
+            return {"trends": {}, "alarms": [], "profile": None, "profile_text": None,
+                    "fluid_challenge": None}
+        return {"trends": self.trending.view(b),
+                "alarms": [a.as_dict() for a in self.book.active(bed)],
+                "profile": b.profile,
+                "profile_text": PROFILE_TEXT.get(b.profile) if b.profile else None,
+                "fluid_challenge": dict(b.fc_last) if b.fc_last else None,
+                "fluid_challenge_open": b.fc is not None}
+
+    def trend_directions(self, bed: str) -> dict[str, str]:
+        """Current trend direction per trended parameter that has one (cheap: for publishing
+        with every derived message)."""
+        b = self._beds.get(bed)
+        if b is None:
+            return {}
+        return self.trending.directions(b)
+
+    def alarm_state(self, bed: str) -> dict[str, Any]:
+        """Current alarm state of the bed (retained on ``hemo/<unit>/<bed>/alarm``)."""
+        act = self.book.active(bed)
+        return {"alarms": [a.as_dict() for a in act], "count": len(act),
+                "highest": act[0].priority if act else None}
