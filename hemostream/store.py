@@ -9,6 +9,8 @@ stalls ingest and the hot path creates no ORM objects.
 
 from __future__ import annotations
 
+import hashlib
+import json
 import logging
 import queue
 import threading
@@ -173,16 +175,32 @@ class AlarmEvent(Base):
     __table_args__ = (Index("ix_alarm_events_bed_time", "bed_id", "time"),)
 
 
+class ConfigSnapshot(Base):
+    """A configuration that came into force (replay or live run start), kept with the data so
+    a review reads the limits that applied rather than those of today's file.
+
+    ``time``: from when it applies (epoch seconds UTC; the newest stored arrival when it was
+    written, 0 for an empty database), ``sha256`` of ``config`` (canonical JSON: sorted keys,
+    no spaces). A configuration equal to the one last in force is not written again."""
+
+    __tablename__ = "config_snapshots"
+    id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
+    time: Mapped[float] = mapped_column(Float(53))
+    sha256: Mapped[str] = mapped_column(String(64))
+    config: Mapped[str] = mapped_column(Text)
+    __table_args__ = (Index("ix_config_snapshots_time", "time"),)
+
+
 TABLES = {
     "beds": Bed.__table__, "messages": Message.__table__,
     "observations": Observation.__table__, "derived": DerivedValue.__table__,
     "admissions": Admission.__table__, "notes": Note.__table__,
     "commands": Command.__table__, "rejected": Rejected.__table__,
-    "alarm_events": AlarmEvent.__table__,
+    "alarm_events": AlarmEvent.__table__, "config_snapshots": ConfigSnapshot.__table__,
 }
 #: insertion order that respects foreign keys
 INSERT_ORDER = ("beds", "messages", "observations", "derived", "admissions", "notes",
-                "commands", "rejected", "alarm_events")
+                "commands", "rejected", "alarm_events", "config_snapshots")
 
 
 class StoreError(RuntimeError):
@@ -358,7 +376,68 @@ class Writer:
 
 def rows_of(outputs: Any) -> dict[str, list[dict]]:
     """The table rows of a :class:`hemostream.core.processor.Outputs`."""
-    return {name: getattr(outputs, name) for name in INSERT_ORDER if getattr(outputs, name)}
+    return {name: getattr(outputs, name) for name in INSERT_ORDER
+            if getattr(outputs, name, None)}
+
+
+# --------------------------------------------------------------------------- configurations
+
+
+def canonical_config(cfg: Any) -> tuple[str, str]:
+    """(canonical JSON, its sha256) of a configuration model (or plain dict).
+
+    >>> canonical_config({"b": 1, "a": [1.5]})[0]
+    '{"a":[1.5],"b":1}'
+    """
+    data = cfg.model_dump(mode="json") if hasattr(cfg, "model_dump") else cfg
+    text = json.dumps(data, sort_keys=True, separators=(",", ":"), ensure_ascii=False)
+    return text, hashlib.sha256(text.encode()).hexdigest()
+
+
+def record_config(engine: Engine, cfg: Any, time: float | None = None) -> bool:
+    """Store ``cfg`` as the configuration in force from ``time`` (default: the newest stored
+    arrival, so it applies to what comes next; 0 for an empty database). Nothing is written
+    when it equals the configuration last in force. Returns whether a row was written."""
+    text, digest = canonical_config(cfg)
+    t = ConfigSnapshot.__table__
+    with engine.connect() as conn:
+        last = conn.execute(select(t.c.sha256).order_by(t.c.time.desc(), t.c.id.desc())
+                            .limit(1)).scalar()
+        if last == digest:
+            return False
+        if time is None:
+            time = conn.execute(select(func.max(Message.__table__.c.rx))).scalar() or 0.0
+    write_rows(engine, {"config_snapshots": [
+        {"time": float(time), "sha256": digest, "config": text}]})
+    return True
+
+
+def config_snapshots(engine: Engine, since: float | None = None, limit: int | None = None
+                     ) -> list[dict[str, Any]]:
+    """Stored configurations, oldest first: ``time`` (epoch s), ``sha256``, ``config`` (the
+    parsed JSON). An older database without the table has none."""
+    from sqlalchemy import inspect
+
+    if not inspect(engine).has_table("config_snapshots"):
+        return []
+    t = ConfigSnapshot.__table__
+    stmt = select(t).order_by(t.c.time, t.c.id)
+    if since is not None:
+        stmt = stmt.where(t.c.time >= since)
+    if limit:
+        stmt = stmt.limit(limit)
+    with engine.connect() as conn:
+        return [{"time": r.time, "sha256": r.sha256, "config": json.loads(r.config)}
+                for r in conn.execute(stmt)]
+
+
+def config_in_force(engine: Engine, at: float) -> dict[str, Any] | None:
+    """The configuration (parsed JSON) in force at ``at``: the newest snapshot from at or
+    before ``at``, else the first one; None when nothing was stored."""
+    snaps = config_snapshots(engine)
+    before = [s for s in snaps if s["time"] <= at]
+    pick = before[-1] if before else (snaps[0] if snaps else None)
+    return pick["config"] if pick else None
 
 
 def iter_rows(engine: Engine, stmt) -> Iterable[Any]:

@@ -33,35 +33,8 @@ VERSION = 1
 # --------------------------------------------------------------------------- parameters
 
 
-class ParamSpec(NamedTuple):
-    dimension: str
-    meaning: str
-
-    @property
-    def canonical_unit(self) -> str:
-        return CANONICAL[self.dimension]
-
-
-PARAMS: dict[str, ParamSpec] = {
-    "HR": ParamSpec("rate", "heart rate (ECG)"),
-    "PR": ParamSpec("rate", "pulse rate (oximeter or arterial line)"),
-    "ABP_SYS": ParamSpec("pressure", "invasive arterial pressure, systolic"),
-    "ABP_DIA": ParamSpec("pressure", "invasive arterial pressure, diastolic"),
-    "ABP_MEAN": ParamSpec("pressure", "invasive arterial pressure, mean"),
-    "NIBP_SYS": ParamSpec("pressure", "cuff pressure, systolic (intermittent)"),
-    "NIBP_DIA": ParamSpec("pressure", "cuff pressure, diastolic (intermittent)"),
-    "NIBP_MEAN": ParamSpec("pressure", "cuff pressure, mean (intermittent)"),
-    "CVP": ParamSpec("pressure", "central venous pressure (mean)"),
-    "PAP_SYS": ParamSpec("pressure", "pulmonary artery pressure, systolic"),
-    "PAP_DIA": ParamSpec("pressure", "pulmonary artery pressure, diastolic"),
-    "PAP_MEAN": ParamSpec("pressure", "pulmonary artery pressure, mean"),
-    "PAWP": ParamSpec("pressure", "pulmonary artery wedge pressure (intermittent)"),
-    "CO": ParamSpec("flow", "cardiac output"),
-    "SV": ParamSpec("volume", "stroke volume"),
-    "SPO2": ParamSpec("saturation", "peripheral oxygen saturation"),
-    "RR": ParamSpec("rate", "respiratory rate"),
-    "TEMP": ParamSpec("temperature", "core temperature"),
-}
+# the parameter table lives in params.py (with plausible ranges, maximum ages, channels)
+from .params import PARAMS, ParamSpec  # noqa: E402,F401
 
 Status = Literal["valid", "questionable", "invalid", "calibrating", "test"]
 

@@ -37,7 +37,7 @@ from ..core.rules.protocol import RulesLayer
 from ..core.wire import encode, format_epoch, input_filters
 from ..core.wire import status_topic as instance_status_topic
 from ..pipeline import make_rules
-from ..store import StoreError, Writer, load_resume, open_engine, rows_of
+from ..store import StoreError, Writer, load_resume, open_engine, record_config, rows_of
 from .health import Health, log_line, status_payload
 from .transport import Incoming, Transport, TransportError
 
@@ -232,7 +232,8 @@ class Service:
         except StoreError as e:
             log.error("%s", e)
             return 1
-        sqlite_synchronous(engine, b.sqlite_synchronous)
+        sqlite_synchronous(engine, cfg.store.sqlite_synchronous)
+        await asyncio.to_thread(record_config, engine, cfg)   # the configuration in force
         resume = await asyncio.to_thread(load_resume, engine)
         self.proc = Processor(cfg, rules=self.rules, next_ids=resume.next_ids,
                               known_beds=resume.beds, known_messages=resume.messages)
