@@ -32,6 +32,8 @@ from ..live.mqtt import BrokerSettingsError, MqttTransport
 from ..live.publish import publish_recording_lines
 from ..live.service import Service, status_topic
 from ..live.transport import TransportError
+from ..intake.hl7 import cli as hl7_cli
+from ..intake.hl7.mllp import Hl7ServiceIntake
 from ..replay import replay_file
 from ..review.cli import add_parsers as add_review_parsers
 from ..store import StoreError, open_engine
@@ -72,6 +74,8 @@ def cmd_replay(args) -> int:
     if not path.is_file():
         err.print(f"[red]error:[/] recording {str(path)!r} does not exist or is not a file")
         return 2
+    if hl7_cli.looks_like_hl7(path):            # a file of HL7 v2 messages (docs/hl7.md)
+        return hl7_cli.replay_command(path, args.db, args.config, args.json)
     url = args.db or cfg.store.url
     show = err.is_terminal and path.stat().st_size > 2_000_000 and not args.quiet
     try:
@@ -158,6 +162,13 @@ def cmd_run(args) -> int:
     log.info("broker %s as client %r (QoS 1, persistent session, acknowledged after "
              "storing)", transport.address, cfg.broker.client_id)
     svc = Service(cfg, transport)
+    listen = args.hl7_listen or cfg.intake.hl7.listen
+    if listen:
+        try:
+            svc.intakes.append(Hl7ServiceIntake(svc.submit_external, cfg.intake.hl7, listen))
+        except ValueError as e:
+            log.error("--hl7-listen / intake.hl7.listen: %s", e)
+            return 2
 
     async def main() -> int:
         loop = asyncio.get_running_loop()
@@ -333,6 +344,9 @@ def add_live_parsers(sub) -> None:
                    "(overrides broker.url; a user name may go before the host, a password "
                    "never)")
     r.add_argument("--db", metavar="URL", help="database URL (overrides store.url)")
+    r.add_argument("--hl7-listen", metavar="HOST:PORT",
+                   help="also accept HL7 v2 (IHE PCD-01 ORU^R01) over MLLP here, acknowledged "
+                   "after storing (overrides intake.hl7.listen; see docs/hl7.md)")
     r.add_argument("--log-level", default="info",
                    choices=("debug", "info", "warning", "error"))
     r.set_defaults(func=cmd_run)
@@ -414,7 +428,7 @@ def build_parser() -> argparse.ArgumentParser:
     add_watch_parser(sub)
     add_review_parsers(sub)
     if add_simulate_parser is not None:
-        add_simulate_parser(sub, publisher=publish_lines)
+        add_simulate_parser(sub, publisher=publish_lines, hl7=hl7_cli)
     return p
 
 

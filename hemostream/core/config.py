@@ -11,6 +11,7 @@ from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 
+from .intake import IntakeConfig
 from .rules.config import RulesConfig
 from .wire import ID_RE, PARAMS
 
@@ -200,3 +201,5 @@ class Config(BaseModel):
     broker: BrokerConfig = Field(default_factory=BrokerConfig)
     #: trends, limit and pattern rules, fluid challenges, alarm lifecycle (configs/rules.toml)
     rules: RulesConfig = Field(default_factory=RulesConfig)
+    #: other intakes besides MQTT: [intake.hl7], HL7 v2 (IHE PCD-01) over MLLP (docs/hl7.md)
+    intake: IntakeConfig = Field(default_factory=IntakeConfig)

@@ -26,6 +26,7 @@ import logging
 import random
 import time
 from collections import deque
+from dataclasses import dataclass
 from typing import Any, Callable, Literal
 
 from sqlalchemy import event
@@ -45,6 +46,17 @@ log = logging.getLogger("hemostream.live")
 
 _TICK = object()
 _STOP = object()
+
+
+@dataclass
+class External:
+    """Input from another intake (the HL7 MLLP listener): ``feed(processor, rx)`` runs on the
+    processing loop; ``done`` resolves once the batch holding its rows is committed."""
+
+    feed: Callable[[Processor, float], Any]
+    done: asyncio.Future
+    rx: float
+    result: Any = None
 
 
 def subscription_filters(cfg: Config) -> list[str]:
@@ -201,11 +213,30 @@ class Service:
         self.ready = asyncio.Event()        # set once subscribed the first time
         self._outstanding = 0               # batches submitted, not yet committed
         self._committed_evt = asyncio.Event()
+        #: other intakes (objects with async start() / close()), e.g. the HL7 MLLP listener
+        self.intakes: list[Any] = []
+        self._external: set[asyncio.Future] = set()
 
     # ------------------------------------------------------------------ control
 
     def stop(self) -> None:
         self._stop.set()
+
+    async def submit_external(self, feed: Callable[[Processor, float], Any]) -> Any:
+        """Run ``feed(processor, rx)`` on the processing loop and return its result once the
+        rows it produced are committed (raises when they cannot be: the caller must not
+        acknowledge its input then)."""
+        if self._stop.is_set() or self.fatal is not None:
+            raise RuntimeError(self.fatal or "the service is stopping")
+        item = External(feed, self._loop.create_future(), self.clock())
+        self._external.add(item.done)
+        self.health.received += 1
+        await self.inq.put(item)
+        try:
+            await item.done
+        finally:
+            self._external.discard(item.done)
+        return item.result
 
     def _fail(self, message: str) -> None:
         if self.fatal is None:
@@ -243,6 +274,8 @@ class Service:
         log.info("hemostream %s: database %s, %d bed(s) and %d recent message identities "
                  "known, subscribing to %s", cfg.instance, _safe_url(self.db_url),
                  len(resume.beds), len(resume.messages), ", ".join(self.filters))
+        for intake in self.intakes:
+            await intake.start()
         conn = asyncio.create_task(self._connection_loop(), name="hemostream-connection")
         proc = asyncio.create_task(self._process_loop(), name="hemostream-process")
         tick = asyncio.create_task(self._ticker(), name="hemostream-ticker")
@@ -260,6 +293,8 @@ class Service:
 
     async def _shutdown(self, conn, proc, tick, stop, engine) -> None:
         log.info("stopping: no more messages taken; flushing the database")
+        for intake in self.intakes:
+            await intake.close()
         for task in (conn, tick, stop):
             task.cancel()
         await asyncio.gather(conn, tick, stop, return_exceptions=True)
@@ -300,6 +335,9 @@ class Service:
             await asyncio.to_thread(writer.close)
         except StoreError as e:
             self._fail(str(e))
+        for f in list(self._external):      # not committed: their senders get no ACK
+            if not f.done():
+                f.set_exception(RuntimeError(self.fatal or "stopped before the commit"))
         engine.dispose()
         h = self.health
         log.info("stopped: %d message(s) received, %d stored, %d duplicate(s) dropped, "
@@ -380,7 +418,10 @@ class Service:
             if item is _STOP:
                 break
             if item is not _TICK:
-                proc.feed(item.topic, item.payload, item.rx, retained=item.retain)
+                if isinstance(item, External):
+                    item.result = item.feed(proc, item.rx)
+                else:
+                    proc.feed(item.topic, item.payload, item.rx, retained=item.retain)
                 batch.append(item)
             now = mono()
             if now >= next_tick:
@@ -407,13 +448,14 @@ class Service:
         rows = rows_of(out)
         if not rows and not batch:
             return
-        acks = [(m.generation, m.mid, m.qos) for m in batch]
+        acks = [(m.generation, m.mid, m.qos) for m in batch if not isinstance(m, External)]
+        externals = [m.done for m in batch if isinstance(m, External)]
         oldest = min((m.rx for m in batch), default=self.clock())
         loop = self._loop
         n = len(batch)
 
         def on_done() -> None:   # writer thread, after COMMIT
-            loop.call_soon_threadsafe(self._committed, acks, n, oldest)
+            loop.call_soon_threadsafe(self._committed, acks, n, oldest, externals)
 
         writer = self.writer
         self._outstanding += 1
@@ -428,8 +470,12 @@ class Service:
                        f"acknowledged): {e}")
             raise
 
-    def _committed(self, acks: list[tuple[int, int, int]], n: int, oldest_rx: float) -> None:
+    def _committed(self, acks: list[tuple[int, int, int]], n: int, oldest_rx: float,
+                   externals: list[asyncio.Future] = ()) -> None:
         self._outstanding -= 1
+        for f in externals:
+            if not f.done():
+                f.set_result(None)
         h = self.health
         ack = self.t.ack
         for gen, mid, qos in acks:

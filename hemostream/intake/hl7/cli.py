@@ -44,6 +44,12 @@ def replay_command(path: str | Path, db_url: str | None, config_path: str | None
     except (ConfigError, ValueError) as e:
         print(f"error: {e}", file=sys.stderr)
         return 2
+    if not hcfg.locations and not hcfg.locations_from_components:
+        # a recording with no location map configured: read PV1-3 as unit ^ room ^ bed (as
+        # `simulate --format hl7` writes it) rather than reject every message
+        hcfg = hcfg.model_copy(update={"locations_from_components": True})
+        print("note: no [intake.hl7] locations configured; reading PV1-3 as "
+              "<unit>^<room>^<bed>", file=sys.stderr)
     try:
         s = replay_hl7_file(path, db_url or cfg.store.url, cfg, hcfg)
     except StoreError as e:
