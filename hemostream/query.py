@@ -14,9 +14,10 @@ from sqlalchemy import select
 
 from .core.wire import format_epoch as iso
 from .core.wire import parse_time
-from .store import TABLES
+from .store import TABLES, config_snapshots
 
-KINDS = ("observations", "derived", "rejected", "notes", "alarms", "admissions", "commands")
+KINDS = ("observations", "derived", "rejected", "notes", "alarms", "admissions", "commands",
+         "configs")
 
 # columns shown per kind, in order (after time, care_unit, bed)
 _COLUMNS: dict[str, tuple[str, ...]] = {
@@ -38,6 +39,9 @@ def parse_since(text: str) -> float:
 def rows(engine, kind: str, bed: str | None = None, param: str | None = None,
          since: float | None = None, limit: int | None = None) -> Iterator[dict[str, Any]]:
     """Rows of ``kind`` as dicts with RFC 3339 times, oldest first."""
+    if kind == "configs":          # configurations in force (store.config_snapshots)
+        yield from ({**c, "time": iso(c["time"])} for c in config_snapshots(engine, since, limit))
+        return
     table = TABLES["alarm_events" if kind == "alarms" else kind]
     beds = TABLES["beds"]
     if kind == "rejected":
@@ -97,6 +101,7 @@ TABLE_COLUMNS: dict[str, tuple[str, ...]] = {
     "admissions": ("time", "bed", "height_cm", "weight_kg", "bsa_m2", "discharged"),
     "commands": ("time", "bed", "action", "alarm", "by", "result"),
     "rejected": ("rx", "topic", "category", "reason"),
+    "configs": ("time", "sha256"),
 }
 
 

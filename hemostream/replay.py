@@ -15,7 +15,7 @@ from .core.processor import Counters, Processor, RecordingLineBytes
 from .core.rules.protocol import RulesLayer
 from .core.wire import ObsMessage, Time, epoch, parse_time
 from .pipeline import make_rules
-from .store import Writer, load_resume, open_engine, rows_of
+from .store import Writer, load_resume, open_engine, record_config, rows_of
 
 
 @dataclass
@@ -120,6 +120,7 @@ def replay_file(path: str | Path, db_url: str | None = None, config: Config | No
     p = Path(path)
     total = p.stat().st_size
     engine = open_engine(url)
+    record_config(engine, cfg)             # the configuration in force, kept with the data
     resume = load_resume(engine)
     if rules == "default":
         rules = make_rules(cfg)

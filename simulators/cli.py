@@ -31,12 +31,14 @@ recording byte for byte. Scenario files are described in docs/simulators.md.
 Publisher = Callable[[Iterator[dict], str, float], int]
 
 
-def add_parser(subparsers: Any, publisher: Publisher | None = None) -> None:
+def add_parser(subparsers: Any, publisher: Publisher | None = None, hl7: Any = None) -> None:
     """Register the ``simulate`` subcommand on an argparse subparsers object.
 
     ``publisher(lines, url, speed) -> exit status`` streams lines to an MQTT broker; the
     ``hemostream`` command passes its own (the simulators do not reach into the live shell).
-    Without one, ``--publish`` explains that live publishing is not available.
+    Without one, ``--publish`` explains that live publishing is not available. ``hl7`` is
+    the HL7 intake's command module (``write_command``, ``publisher``), for ``--format hl7``
+    and ``--publish-hl7``.
     """
     p = subparsers.add_parser(
         "simulate", help="simulate a ward from a scenario and write a recording",
@@ -65,10 +67,16 @@ def add_parser(subparsers: Any, publisher: Publisher | None = None) -> None:
                    help="publish live to an MQTT broker (QoS 1), e.g. mqtt://localhost:1883"
                    + ("" if publisher else " (not available in this installation: use --out)")
                    + "; with --out as well, the recording is written as it is published")
+    p.add_argument("--format", choices=("jsonl", "hl7"), default="jsonl",
+                   help="with --out: the wire format's JSON Lines (default), or HL7 v2 "
+                   "ORU^R01 messages (IHE PCD-01, IEEE 11073 terms; see docs/hl7.md)")
+    p.add_argument("--publish-hl7", metavar="HOST:PORT",
+                   help="send the ward live as HL7 v2 over MLLP to a listener such as "
+                   "`hemostream run --hl7-listen` (each message waits for its ACK)")
     p.add_argument("--speed", type=_positive_float, default=1.0, metavar="N",
-                   help="with --publish: N times real time (default 1)")
+                   help="with --publish or --publish-hl7: N times real time (default 1)")
     p.add_argument("--quiet", action="store_true", help="no progress bar or summary")
-    p.set_defaults(func=run, publisher=publisher)
+    p.set_defaults(func=run, publisher=publisher, hl7=hl7)
 
 
 def run(args: argparse.Namespace) -> int:
@@ -89,9 +97,13 @@ def run(args: argparse.Namespace) -> int:
         _error("live publishing (--publish) is not available yet; write a recording with "
                "--out and replay it, or stream it with `hemostream replay --speed N`")
         return 2
-    if not args.out and not args.publish:
+    hl7 = getattr(args, "hl7", None)
+    if (args.format == "hl7" or args.publish_hl7) and hl7 is None:
+        _error("HL7 output is not available in this installation")
+        return 2
+    if not args.out and not args.publish and not args.publish_hl7:
         _error("--out RECORDING is required (a file, or '-' for standard output), "
-               "or --publish URL")
+               "or --publish URL, or --publish-hl7 HOST:PORT")
         return 2
     try:
         scenario = load_scenario(args.scenario)
@@ -104,6 +116,23 @@ def run(args: argparse.Namespace) -> int:
 
     if args.publish:
         return _publish(args, scenario, duration, publisher)
+    if args.publish_hl7:
+        return int(hl7.publisher(generate(scenario, beds=args.beds, duration_s=duration,
+                                          seed=args.seed, start=args.start),
+                                 args.publish_hl7, args.speed) or 0)
+    if args.format == "hl7":
+        try:
+            count = hl7.write_command(generate(scenario, beds=args.beds,
+                                               duration_s=duration, seed=args.seed,
+                                               start=args.start), args.out)
+        except OSError as e:
+            _error(f"cannot write {args.out!r}: {e.strerror or e}")
+            return 1
+        if not args.quiet and args.out != "-":
+            print(f"wrote {args.out}: {count} HL7 v2 messages, {len(plans)} bed(s) of "
+                  f"{scenario.unit}, {format_duration(duration)} simulated (scenario "
+                  f"{scenario.id}, seed {args.seed})", file=sys.stderr)
+        return 0
 
     show = not args.quiet and args.out != "-" and sys.stderr.isatty() \
         and duration * len(plans) >= 3600

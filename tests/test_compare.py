@@ -27,7 +27,7 @@ from pathlib import Path
 import pytest
 
 from hemostream.cli import main
-from hemostream.review.compare import compare
+from hemostream.review.runner import compare
 
 DATA = Path(__file__).resolve().parent / "data"
 REC = DATA / "compare-hr.jsonl"

@@ -2,6 +2,8 @@
 
 import json
 
+import pytest
+
 from hemostream.core.config import Config, UnitConfig
 from hemostream.core.processor import Processor
 
@@ -65,8 +67,9 @@ def test_admit_gives_bsa_and_discharge_resets():
     p.feed("hemo/U1/b1/obs", json.dumps(obs(1, T + 1, [("HR", 80, "/min"),
                                                           ("CO", 5.0, "L/min")])), T + 1)
     out = p.drain()
-    assert round(derived_of(out, "BSA")[0]["value"], 2) == 2.00          # Mosteller 1987
-    assert derived_of(out, "CI")[0]["value"] == 5.0 / derived_of(out, "BSA")[0]["value"]
+    assert round(derived_of(out, "BSA")[0]["value"], 2) == 2.00   # [mosteller1987] worked example
+    # CI = CO / BSA with the published 2.00 m2 for 180 cm, 80 kg: 5.0 / 2.00 = 2.5 L/min/m2
+    assert derived_of(out, "CI")[0]["value"] == pytest.approx(5.0 / 2.00, abs=0.01)
     p.feed("hemo/U1/b1/admit", {"v": 1, "time": iso(T + 2), "discharged": True}, T + 2)
     p.feed("hemo/U1/b1/obs", json.dumps(obs(2, T + 3, [("HR", 80, "/min")])), T + 3)
     out = p.drain()
@@ -107,3 +110,25 @@ def test_unix_time_numbers_and_naive_times_are_refused():
     assert [r["category"] for r in out.rejected] == ["bad_field", "bad_field"]
     assert "RFC 3339" in out.rejected[0]["reason"]
     assert "timezone" in out.rejected[1]["reason"]
+
+
+def test_arrival_time_as_int_float_or_aware_datetime():
+    # the core never raises: int epoch seconds (e.g. time.time_ns() // 10**9) are accepted
+    from datetime import datetime, timezone
+    for i, rx in enumerate([int(T), T, datetime.fromtimestamp(T, timezone.utc)]):
+        p = Processor()
+        p.feed("hemo/U1/b1/obs", obs(1, T, [("HR", 70, "/min")]), rx)
+        out = p.drain()
+        assert not out.rejected, rx
+        assert out.messages[0]["rx"] == T and isinstance(out.messages[0]["rx"], float)
+
+
+def test_unusable_arrival_time_is_a_reject():
+    from datetime import datetime
+    for rx in ["2026-12-01T10:00:00Z", None, True, float("nan"), datetime(2026, 12, 1, 10)]:
+        p = Processor()
+        p.feed("hemo/U1/b1/obs", obs(1, T, [("HR", 70, "/min")]), rx)
+        out = p.drain()
+        assert [r["category"] for r in out.rejected] == ["bad_arrival_time"], rx
+        assert "arrival time" in out.rejected[0]["reason"]
+        assert not out.messages and not out.observations

@@ -47,7 +47,8 @@ def test_handmade_recording(handmade, db_url):
 
     # bed-A1: arterial line, CVP in cm[H2O], continuous CO; Mosteller BSA from 170 cm, 70 kg
     d = first_derived(engine, "bed-A1")
-    bsa = math.sqrt(170 * 70 / 3600)                               # Mosteller 1987
+    bsa = math.sqrt(170 * 70 / 3600)               # [mosteller1987], the published formula
+    assert round(bsa, 2) == 1.82                   # BSA tables for 170 cm, 70 kg (from memory)
     cvp = mmhg(10.0, "cmH2O")
     map_ = 80 + (120 - 80) / 3                                     # common practice
     assert d["BSA"]["value"] == pytest.approx(bsa, rel=1e-9)
@@ -76,7 +77,7 @@ def test_handmade_recording(handmade, db_url):
 
     # bed-A3: measured mean, PA catheter with wedge, thermodilution CO in mL/min
     d = first_derived(engine, "bed-A3")
-    co, hr, bsa = 4.8, 75, math.sqrt(180 * 80 / 3600)
+    co, hr, bsa = 4.8, 75, 2.00      # [mosteller1987] worked example: 180 cm, 80 kg -> 2.00 m2
     pam = mmhg(3.0, "kPa")
     sv = co * 1000 / hr
     svi = sv / bsa
@@ -176,3 +177,34 @@ def test_reject_inside_a_good_line_keeps_the_payload_bytes(tmp_path, db_url):
     rej = list(query.rows(open_engine(db_url, create=False), "rejected"))
     assert len(rej) == 1 and rej[0]["category"] == "implausible"
     assert json.loads(rej[0]["raw"]) == json.loads(line)["payload"]
+
+
+def test_configuration_in_force_is_stored_with_the_data(handmade, db_url):
+    import hashlib
+
+    from hemostream.core.config import Config
+    from hemostream.store import config_in_force, config_snapshots
+
+    replay_file(handmade, db_url)
+    replay_file(handmade, db_url)                 # the same configuration: no second row
+    engine = open_engine(db_url, create=False)
+    snaps = config_snapshots(engine)
+    assert len(snaps) == 1 and snaps[0]["time"] == 0.0      # empty database: from the start
+    with engine.connect() as c:
+        stored = c.execute(select(TABLES["config_snapshots"])).one()
+    # sha256 of the stored canonical JSON (hashlib), and the JSON is the whole configuration
+    assert stored.sha256 == hashlib.sha256(stored.config.encode()).hexdigest()
+    assert Config.model_validate(json.loads(stored.config)) == Config()
+
+    changed = Config.model_validate({"derive": {"bsa_formula": "dubois"}})
+    replay_file(handmade, db_url, changed)
+    snaps = config_snapshots(engine)
+    with engine.connect() as c:
+        newest_rx = max(r.rx for r in c.execute(select(TABLES["messages"].c.rx)))
+    assert [s["config"]["derive"]["bsa_formula"] for s in snaps] == ["mosteller", "dubois"]
+    assert snaps[1]["time"] == newest_rx          # in force for what came after
+    assert config_in_force(engine, newest_rx - 1)["derive"]["bsa_formula"] == "mosteller"
+    assert config_in_force(engine, newest_rx + 1)["derive"]["bsa_formula"] == "dubois"
+    listed = list(query.rows(engine, "configs"))
+    assert [r["sha256"] for r in listed] == [s["sha256"] for s in snaps]
+    assert listed[0]["time"] == "1970-01-01T00:00:00.000Z"

@@ -31,7 +31,7 @@ import pytest
 from hemostream.cli import main
 from hemostream.replay import replay_file
 from hemostream.config import load_config
-from hemostream.review.report import PANEL_KEYS
+from hemostream.review.panels import PANEL_KEYS
 
 DATA = Path(__file__).resolve().parent / "data"
 REC = DATA / "compare-bed.jsonl"
@@ -263,3 +263,34 @@ def test_renders_in_headless_chromium(built, tmp_path):
     dark = int((r + g + b < 150).sum())
     assert red > 300 and yellow > 300, (red, yellow)     # the alarm bars of the time line
     assert dark > 5000                                     # text, axes and value lines
+
+
+def test_limits_come_from_the_configuration_stored_with_the_data(built, tmp_path):
+    # the replay stored tests/data/compare-bed.toml with the data; a report given only the
+    # built-in defaults (no ABP_MEAN limit there) still draws the limits that applied
+    from sqlalchemy import create_engine, text as sql
+
+    d, url, _ = built
+    out = tmp_path / "defaults.html"
+    assert main(["report", "--db", url, "--bed", "TW7/bed-9", "--out", str(out)]) == 0
+    page = out.read_text(encoding="utf-8")
+    assert re.search(r"ABP_MEAN low</td><td>65 from [0-9:]+</td><td>configuration", page)
+    assert re.search(r"HR high</td><td>125 from [0-9:]+</td><td>admission override", page)
+    assert "stored with the data" in page.split('id="limits-source"')[1][:200]
+
+    # a database from before configurations were stored: the report's own, and it says so
+    old = tmp_path / "old.db"
+    for suffix in ("", "-wal", "-shm"):
+        src = Path(url[len("sqlite:///"):] + suffix)
+        if src.exists():
+            shutil.copy(src, str(old) + suffix)
+    eng = create_engine(f"sqlite:///{old}")
+    with eng.begin() as c:
+        c.execute(sql("DROP TABLE config_snapshots"))
+    eng.dispose()
+    out2 = tmp_path / "old.html"
+    assert main(["report", "--db", f"sqlite:///{old}", "--bed", "TW7/bed-9",
+                 "--out", str(out2)]) == 0
+    page2 = out2.read_text(encoding="utf-8")
+    assert "no stored configuration" in page2
+    assert "ABP_MEAN low" not in page2

@@ -459,7 +459,7 @@ def test_disabled_rules_do_nothing():
 
 
 def test_applied_limits_merges_an_admission_over_the_configuration():
-    # the wire format's admit example (/work/shared/wire-format.md): {"HR": {"high": 120},
+    # the wire format's admit example (docs/wire-format.md): {"HR": {"high": 120},
     # "ABP_SYS": {"low": 95}} overrides the configured limits for that bed only
     from hemostream.core.rules.limits import applied_limits
     cfg = RulesConfig()

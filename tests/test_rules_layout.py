@@ -1,4 +1,4 @@
-"""Layout rules of the rules package (DEVELOPERS.md, /work/shared/design.md: a pure core
+"""Layout rules of the rules package (DEVELOPERS.md: a pure core
 apart from the I/O shell; modules small enough to read).
 
 - no module of ``hemostream.core.rules`` (nor ``core/alarms.py``, ``core/trends.py``) over

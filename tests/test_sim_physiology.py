@@ -1,6 +1,6 @@
 """Physiology checks of the circulation model against published and textbook facts.
 
-Each check names its source (see ../shared/references.md and docs/simulators.md), marked as
+Each check names its source (see docs/sources.md and docs/simulators.md), marked as
 there: published, common practice or from memory. The model is used directly (no
 measurement noise, no physiological wander), with the reference adult (70 kg, 175 cm) unless
 a scenario's patient is the point of the check.

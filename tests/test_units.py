@@ -22,7 +22,7 @@ def test_linear_factors_match_pint(code):
 
 
 def test_reference_check_values():
-    # references.md: 1 cm[H2O] = 0.7356 mm[Hg]; 1 kPa = 7.5006 mm[Hg] (UCUM; checked with pint)
+    # [ucum2017] (docs/sources.md): 1 cm[H2O] = 0.7356 mm[Hg]; 1 kPa = 7.5006 mm[Hg]; and pint
     assert to_canonical(1.0, "cm[H2O]") == pytest.approx(
         ureg.Quantity(1, "cmH2O").to("mmHg").magnitude, rel=1e-9)
     assert to_canonical(1.0, "cm[H2O]") == pytest.approx(0.7356, abs=1e-4)
@@ -36,7 +36,8 @@ def test_fahrenheit_matches_pint(f):
 
 
 def test_resistance_factor_matches_pint():
-    # references.md: 1 mm[Hg].min/L = 79.99 dyn.s.cm-5, the "80" of SVR = 80 (MAP-CVP)/CO
+    # [marino2014] (docs/sources.md): 1 mm[Hg].min/L = 79.99 dyn.s.cm-5, the "80" of
+    # SVR = 80 (MAP-CVP)/CO
     expected = ureg.Quantity(1, "mmHg*min/L").to("dyn*s/cm**5").magnitude    # source: pint
     assert MMHG_MIN_PER_L_IN_DYN_S_CM5 == pytest.approx(expected, rel=1e-9)
     assert round(expected) == 80

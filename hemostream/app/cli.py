@@ -25,12 +25,15 @@ from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
 from .. import CAUTION, query
 from ..config import ConfigError, load_config, load_for_command, with_overrides
 from ..core.config import Config
+from ..core.redact import RedactingFilter
 from ..core.wire import ID_RE, command_body, encode, topic
 from ..live.health import status_payload
 from ..live.mqtt import BrokerSettingsError, MqttTransport
 from ..live.publish import publish_recording_lines
 from ..live.service import Service, status_topic
 from ..live.transport import TransportError
+from ..intake.hl7 import cli as hl7_cli
+from ..intake.hl7.mllp import Hl7ServiceIntake
 from ..replay import replay_file
 from ..review.cli import add_parsers as add_review_parsers
 from ..store import StoreError, open_engine
@@ -56,6 +59,8 @@ def live_config(path: str | None) -> Config:
 def setup_logging(level: str) -> None:
     logging.basicConfig(level=getattr(logging, level.upper()), stream=sys.stderr,
                         format="%(asctime)s %(levelname)s %(name)s: %(message)s")
+    for h in logging.getLogger().handlers:      # no password in any line, whoever logs it
+        h.addFilter(RedactingFilter())
     # paho logs packet summaries (topics, sizes) at debug; never payloads
     logging.getLogger("hemostream.live.paho").setLevel(
         logging.DEBUG if level.upper() == "DEBUG" else logging.WARNING)
@@ -69,6 +74,8 @@ def cmd_replay(args) -> int:
     if not path.is_file():
         err.print(f"[red]error:[/] recording {str(path)!r} does not exist or is not a file")
         return 2
+    if hl7_cli.looks_like_hl7(path):            # a file of HL7 v2 messages (docs/hl7.md)
+        return hl7_cli.replay_command(path, args.db, args.config, args.json)
     url = args.db or cfg.store.url
     show = err.is_terminal and path.stat().st_size > 2_000_000 and not args.quiet
     try:
@@ -155,6 +162,13 @@ def cmd_run(args) -> int:
     log.info("broker %s as client %r (QoS 1, persistent session, acknowledged after "
              "storing)", transport.address, cfg.broker.client_id)
     svc = Service(cfg, transport)
+    listen = args.hl7_listen or cfg.intake.hl7.listen
+    if listen:
+        try:
+            svc.intakes.append(Hl7ServiceIntake(svc.submit_external, cfg.intake.hl7, listen))
+        except ValueError as e:
+            log.error("--hl7-listen / intake.hl7.listen: %s", e)
+            return 2
 
     async def main() -> int:
         loop = asyncio.get_running_loop()
@@ -330,6 +344,9 @@ def add_live_parsers(sub) -> None:
                    "(overrides broker.url; a user name may go before the host, a password "
                    "never)")
     r.add_argument("--db", metavar="URL", help="database URL (overrides store.url)")
+    r.add_argument("--hl7-listen", metavar="HOST:PORT",
+                   help="also accept HL7 v2 (IHE PCD-01 ORU^R01) over MLLP here, acknowledged "
+                   "after storing (overrides intake.hl7.listen; see docs/hl7.md)")
     r.add_argument("--log-level", default="info",
                    choices=("debug", "info", "warning", "error"))
     r.set_defaults(func=cmd_run)
@@ -411,7 +428,7 @@ def build_parser() -> argparse.ArgumentParser:
     add_watch_parser(sub)
     add_review_parsers(sub)
     if add_simulate_parser is not None:
-        add_simulate_parser(sub, publisher=publish_lines)
+        add_simulate_parser(sub, publisher=publish_lines, hl7=hl7_cli)
     return p
 
 

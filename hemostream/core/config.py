@@ -6,10 +6,12 @@ so a misspelt option is reported instead of silently ignored.
 
 from __future__ import annotations
 
-from typing import Annotated, Literal
+import warnings
+from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 
+from .intake import IntakeConfig
 from .rules.config import RulesConfig
 from .wire import ID_RE, PARAMS
 
@@ -30,25 +32,10 @@ class Bounds(BaseModel):
         return self
 
 
-# Plausibility: values outside are physically impossible or a device fault, and are rejected
-# (never clamped). Wide on purpose: they catch garbage, not illness (common practice).
-DEFAULT_PLAUSIBLE: dict[str, tuple[float, float]] = {
-    "HR": (0, 350), "PR": (0, 350),
-    "ABP_SYS": (-20, 350), "ABP_DIA": (-20, 300), "ABP_MEAN": (-20, 300),
-    "NIBP_SYS": (0, 350), "NIBP_DIA": (0, 300), "NIBP_MEAN": (0, 300),
-    "CVP": (-20, 80), "PAP_SYS": (-20, 150), "PAP_DIA": (-20, 120), "PAP_MEAN": (-20, 130),
-    "PAWP": (-20, 80), "CO": (0, 30), "SV": (0, 300), "SPO2": (0, 100), "RR": (0, 150),
-    "TEMP": (15, 45),
-}
-
-# How old an input may be and still count as current for derivations (seconds).
-# Continuous channels: seconds; intermittent ones (cuff, wedge, thermodilution CO): minutes.
-DEFAULT_MAX_AGE: dict[str, float] = {
-    "HR": 10, "PR": 10, "ABP_SYS": 10, "ABP_DIA": 10, "ABP_MEAN": 10,
-    "NIBP_SYS": 900, "NIBP_DIA": 900, "NIBP_MEAN": 900,
-    "CVP": 30, "PAP_SYS": 10, "PAP_DIA": 10, "PAP_MEAN": 10, "PAWP": 1800,
-    "CO": 900, "SV": 10, "SPO2": 30, "RR": 30, "TEMP": 300,
-}
+# Defaults from the parameter table (hemostream.core.params): plausible ranges (values
+# outside are rejected, never clamped) and maximum ages for derivations (seconds).
+DEFAULT_PLAUSIBLE: dict[str, tuple[float, float]] = {p: s.plausible for p, s in PARAMS.items()}
+DEFAULT_MAX_AGE: dict[str, float] = {p: s.max_age_s for p, s in PARAMS.items()}
 
 
 class IngestConfig(BaseModel):
@@ -59,6 +46,10 @@ class IngestConfig(BaseModel):
     #: messages older than the bed's newest by more than this are stored, flagged late and
     #: not fed to derivations; within it they are handled in measurement order
     late_after_s: Annotated[float, Field(ge=0)] = 30.0
+    #: a bed's clock (late handling, which value is current, the rules' time) follows the
+    #: measurement times but never runs ahead of arrival by more than this: one message
+    #: dated ahead (within max_clock_skew_s) cannot push it forward and hold back the rest
+    bed_clock_lead_s: Annotated[float, Field(ge=0)] = 1.0
     #: per device, how many recent message identities are remembered to drop duplicates
     dedup_per_device: Annotated[int, Field(ge=16)] = 512
     plausible: dict[str, Bounds] = Field(
@@ -102,6 +93,12 @@ class StoreConfig(BaseModel):
     derived_every_s: Annotated[float, Field(ge=0)] = 60.0
     derived_deadband: Annotated[float, Field(ge=0)] = 0.05
     batch_rows: Annotated[int, Field(gt=0)] = 20000
+    #: on stop, how long to wait for a busy or unreachable database before giving up on the
+    #: last batches (they stay unacknowledged, so the broker delivers them again)
+    shutdown_wait_s: Annotated[float, Field(gt=0)] = 30.0
+    #: SQLite only, live service: "full" syncs every commit to disk before the broker is told
+    #: (survives a power cut); "normal" survives a crash of hemostream but not of the machine
+    sqlite_synchronous: Literal["full", "normal"] = "full"
 
 
 class UnitConfig(BaseModel):
@@ -157,13 +154,44 @@ class BrokerConfig(BaseModel):
     #: outgoing QoS 1 messages in flight / queued in the client
     outgoing_inflight: Annotated[int, Field(ge=1)] = 100
     outgoing_queue: Annotated[int, Field(ge=0)] = 20000
-    #: SQLite only: "full" syncs every commit to disk before the broker is told (survives a
-    #: power cut); "normal" survives a crash of hemostream but not of the machine
-    sqlite_synchronous: Literal["full", "normal"] = "full"
+
+
+class ConfigDeprecation(FutureWarning):
+    """A configuration key that moved; the old place still works for now."""
+
+
+#: (old section, key) -> new section, for keys that moved
+MOVED_KEYS = {("broker", "sqlite_synchronous"): "store"}
 
 
 class Config(BaseModel):
     model_config = _STRICT
+
+    @model_validator(mode="before")
+    @classmethod
+    def _moved_keys(cls, data: Any) -> Any:
+        if not isinstance(data, dict):
+            return data
+        for (old, key), new in MOVED_KEYS.items():
+            sec = data.get(old)
+            if isinstance(sec, dict) and key in sec:
+                data = dict(data)
+                sec = dict(sec)
+                value = sec.pop(key)
+                data[old] = sec
+                target = data.get(new)
+                if isinstance(target, BaseModel):
+                    target = target.model_dump()
+                target = dict(target) if isinstance(target, dict) else {}
+                if key in target:
+                    msg = f"{old}.{key} is deprecated and ignored: {new}.{key} is set"
+                else:
+                    target[key] = value
+                    msg = f"{old}.{key} is deprecated: write it as {new}.{key}"
+                data[new] = target
+                warnings.warn(msg, ConfigDeprecation, stacklevel=2)
+        return data
+
     instance: str = "hemostream-1"
     #: units this instance serves; empty means every unit seen
     units: list[UnitConfig] = Field(default_factory=list)
@@ -173,3 +201,5 @@ class Config(BaseModel):
     broker: BrokerConfig = Field(default_factory=BrokerConfig)
     #: trends, limit and pattern rules, fluid challenges, alarm lifecycle (configs/rules.toml)
     rules: RulesConfig = Field(default_factory=RulesConfig)
+    #: other intakes besides MQTT: [intake.hl7], HL7 v2 (IHE PCD-01) over MLLP (docs/hl7.md)
+    intake: IntakeConfig = Field(default_factory=IntakeConfig)

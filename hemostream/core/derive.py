@@ -173,13 +173,22 @@ def derive_all(cur: dict[str, Current], bsa: tuple[float, float] | None
     eff: dict[str, Current] = {}
     src: dict[str, tuple[tuple[str, float], ...]] = {}
 
-    # Arterial pressure: the line is preferred over the cuff (continuous, beat to beat);
-    # the cuff is used only when no line value is current.
+    # Arterial pressure: the line is preferred over the cuff (continuous, beat to beat) when
+    # it is complete, that is when it gives a systolic value and a mean (measured, or from
+    # systolic and diastolic). An incomplete line (a lone diastolic, say, while the other
+    # values are being re-zeroed) gives way to a complete cuff set; values of the two sites
+    # are never mixed in one calculation.
+    sites = []
     for sys_p, dia_p, mean_p in (("ABP_SYS", "ABP_DIA", "ABP_MEAN"),
                                  ("NIBP_SYS", "NIBP_DIA", "NIBP_MEAN")):
         s, d, m = get(sys_p), get(dia_p), get(mean_p)
-        if s is None and d is None and m is None:
-            continue
+        if s is None and m is None:
+            continue                     # nothing usable (at most a lone diastolic)
+        sites.append((s is not None and (m is not None or d is not None),
+                      sys_p, dia_p, mean_p, s, d, m))
+    if sites:
+        complete = [x for x in sites if x[0]]
+        _, sys_p, dia_p, mean_p, s, d, m = complete[0] if complete else sites[0]
         if s is not None:
             eff["SBP"], src["SBP"] = s, ((sys_p, s.time),)
         if m is not None:
@@ -191,7 +200,6 @@ def derive_all(cur: dict[str, Current], bsa: tuple[float, float] | None
                 mp = mean_pressure(s.value, d.value)
                 add(Derived("MAP", mp, ins))
                 eff["MAP"], src["MAP"] = Current(mp, max(s.time, d.time)), ins
-        break
 
     # Pulmonary artery mean pressure: measured, else from systolic and diastolic.
     pam = get("PAP_MEAN")

@@ -5,6 +5,10 @@ Every path (live MQTT, replay of a recording, the in-process demo) calls
 store and messages to publish with :meth:`Processor.drain`. The core does no I/O and reads no
 clock: time comes from the messages (and from :meth:`Processor.tick` where live operation
 needs the wall clock), so a recording replays to identical results.
+
+The pieces it uses live beside it: :mod:`.outputs` (rows and publications), :mod:`.rejects`
+(reject rows and their reasons), :mod:`.dedup` (duplicate detection), :mod:`.beds` (per-bed
+state); times are :mod:`.wire`'s. Their public names are re-exported here.
 """
 
 from __future__ import annotations
@@ -12,89 +16,25 @@ from __future__ import annotations
 import hashlib
 import json
 import math
-from collections import deque
-from dataclasses import dataclass, field
-from datetime import datetime, timezone
-from typing import Any, Iterable
+from datetime import datetime, timezone  # noqa: F401  (timezone: doctest)
+from typing import Annotated, Any, Iterable, Literal
 
-from pydantic import ValidationError
+from pydantic import BaseModel, ConfigDict, Field, StrictInt, StrictStr, ValidationError
 
+from .beds import BedState
 from .config import Config
+from .dedup import Dedup, obs_identity, raw_digest  # noqa: F401  (for the store)
+from .outputs import (OBSERVATION_COLUMNS, Counters, Outputs,  # noqa: F401  (re-exported)
+                      inputs_json)
+from .rejects import (RecordingLineBytes, Reject, category_of,  # noqa: F401
+                      format_validation_error, reject_row, short)
 from .derive import DERIVED_UNITS, Current, derive_all, bsa_dubois, bsa_mosteller
 from .rules.protocol import RulesLayer
 from .units import BY_DIMENSION, CANONICAL, UNITS
-from .wire import (PARAMS, PAYLOAD_MODELS, TOPIC_KINDS_OUT, AdmitMessage, CommandMessage,
-                   NoteMessage, ObsMessage, TopicError, parse_topic)
-
-_EPOCH = datetime(1970, 1, 1, tzinfo=timezone.utc)
-
-
-def epoch(t: datetime) -> float:
-    """Seconds since 1970-01-01T00:00:00Z of an aware datetime (exact to the microsecond)."""
-    d = t - _EPOCH
-    return d.days * 86400.0 + d.seconds + d.microseconds / 1e6
-
-
-def iso(t: float) -> str:
-    """RFC 3339 UTC text, millisecond precision, for epoch seconds."""
-    return datetime.fromtimestamp(t, timezone.utc).isoformat(
-        timespec="milliseconds").replace("+00:00", "Z")
-
-
-_INPUT_TEXT: dict[tuple[str, float], str] = {}
-
-
-def inputs_json(inputs: Iterable[tuple[str, float]]) -> str:
-    """Provenance of a derived value as compact JSON: ``[["HR",<epoch s>],...]``.
-
-    The text of each (param, time) pair is cached: the inputs of one message's derived values
-    share a few measurement times, and float formatting dominated this step.
-
-    >>> inputs_json((("HR", 1.5), ("CO", 2.0)))
-    '[["HR",1.5],["CO",2.0]]'
-    """
-    cache = _INPUT_TEXT
-    parts = []
-    for pair in inputs:
-        s = cache.get(pair)
-        if s is None:
-            if len(cache) > 50_000:
-                cache.clear()
-            s = cache[pair] = f'["{pair[0]}",{pair[1]!r}]'
-        parts.append(s)
-    return "[" + ",".join(parts) + "]"
-
-
-def format_validation_error(err: ValidationError, limit: int = 5) -> str:
-    """Turn pydantic's errors into one line a person can act on: field path, problem, input."""
-    parts = []
-    for e in err.errors(include_url=False)[:limit]:
-        loc = ""
-        for item in e["loc"]:
-            if isinstance(item, int):
-                loc += f"[{item}]"
-            else:
-                loc += ("." if loc else "") + str(item)
-        msg = e["msg"].removeprefix("Value error, ")
-        if e["type"] == "json_invalid":
-            parts.append(f"payload is not valid JSON ({e.get('ctx', {}).get('error', msg)})")
-            continue
-        if e["type"] == "model_type" or e["type"] == "model_attributes_type":
-            parts.append("payload must be a JSON object")
-            continue
-        got = e.get("input")
-        shown = "" if e["type"] == "missing" or not e["loc"] else f" (got {_short(got)})"
-        parts.append(f"{loc or 'payload'}: {msg}{shown}")
-    more = len(err.errors()) - limit
-    if more > 0:
-        parts.append(f"and {more} more problem(s)")
-    return "; ".join(parts)
-
-
-def _short(v: Any) -> str:
-    r = json.dumps(v, default=str) if not isinstance(v, str) else repr(v)
-    return r if len(r) <= 60 else r[:57] + "..."
-
+from .wire import epoch, format_epoch as iso  # noqa: F401  (re-exported)
+from .wire import (PARAMS, PAYLOAD_MODELS, SEQ_MAX, TOPIC_KINDS_OUT, AdmitMessage,
+                   CommandMessage, NoteMessage, Observation, ObsMessage, Time, TopicError,
+                   parse_topic)
 
 #: where each effective value of :func:`derive_all` can come from
 EFFECTIVE_SOURCES = {
@@ -105,113 +45,22 @@ EFFECTIVE_SOURCES = {
     "CO": frozenset({"CO", "HR", "PR", "SV"}),
 }
 
-#: column order of the observation row tuples
-OBSERVATION_COLUMNS = ("message_id", "bed_id", "param", "time", "value", "unit", "raw_value",
-                       "raw_unit", "status", "late")
+def arrival_epoch(rx: Any) -> float | None:
+    """Epoch seconds of an arrival time given as epoch seconds or an aware datetime, or None
+    for anything else (naive datetimes, text, bools, NaN or infinite numbers).
 
-
-@dataclass
-class Outputs:
-    """What the core produced since the last drain: rows per table and messages to publish."""
-
-    beds: list[dict] = field(default_factory=list)
-    messages: list[dict] = field(default_factory=list)
-    #: the hot table: tuples in the order of :data:`OBSERVATION_COLUMNS`
-    observations: list[tuple] = field(default_factory=list)
-    derived: list[dict] = field(default_factory=list)
-    admissions: list[dict] = field(default_factory=list)
-    notes: list[dict] = field(default_factory=list)
-    commands: list[dict] = field(default_factory=list)
-    rejected: list[dict] = field(default_factory=list)
-    alarm_events: list[dict] = field(default_factory=list)
-    #: (topic, JSON-able payload, retain) for the live path
-    publish: list[tuple[str, Any, bool]] = field(default_factory=list)
-    duplicates: int = 0
-
-    TABLES = ("beds", "messages", "observations", "derived", "admissions", "notes",
-              "commands", "rejected", "alarm_events")
-
-    def row_count(self) -> int:
-        return sum(len(getattr(self, t)) for t in self.TABLES)
-
-
-@dataclass
-class Counters:
-    messages: int = 0
-    observations: int = 0
-    duplicates: int = 0
-    late: int = 0
-    derived_computed: int = 0
-    derived_stored: int = 0
-    alarm_events: int = 0
-    rejected: dict[str, int] = field(default_factory=dict)
-
-    def reject(self, category: str) -> None:
-        self.rejected[category] = self.rejected.get(category, 0) + 1
-
-
-class _Bed:
-    __slots__ = ("id", "unit", "bed", "key", "latest", "newest", "bsa", "stored")
-
-    def __init__(self, bed_id: int, unit: str, bed: str) -> None:
-        self.id = bed_id
-        self.unit = unit
-        self.bed = bed
-        self.key = f"{unit}/{bed}"
-        self.latest: dict[str, Current] = {}
-        self.newest = -math.inf            # newest measurement time seen (event time)
-        self.bsa: tuple[float, float] | None = None
-        self.stored: dict[str, tuple[float, float]] = {}   # derived param -> (time, value)
-
-    def reset(self) -> None:
-        self.latest.clear()
-        self.bsa = None
-        self.stored.clear()
-
-
-def obs_identity(seq: int, t: float) -> int:
-    """(seq, time) of an obs message as one exact integer: seq above, the time in whole
-    microseconds below (2^52 us reach past the year 2100). An int takes about a third of the
-    memory of a (seq, time) tuple, and thousands of devices x hundreds of identities add up.
-
-    >>> obs_identity(1, 0.000001) == (1 << 52) + 1
-    True
+    >>> arrival_epoch(1), arrival_epoch(datetime(1970, 1, 1, 0, 1, tzinfo=timezone.utc))
+    (1.0, 60.0)
+    >>> arrival_epoch(datetime(1970, 1, 1)) is None, arrival_epoch("now") is None
+    (True, True)
     """
-    return (seq << 52) + round(t * 1e6)
-
-
-class _Dedup:
-    """Recent message identities per device, bounded (at-least-once redeliveries are recent)."""
-
-    def __init__(self, per_device: int) -> None:
-        self.per_device = per_device
-        self.seen: dict[str, tuple[set, deque]] = {}
-
-    def check_and_add(self, device: str, ident: Any) -> bool:
-        """True when ``ident`` was already seen for ``device``; remembers it otherwise."""
-        entry = self.seen.get(device)
-        if entry is None:
-            entry = self.seen[device] = (set(), deque())
-        s, q = entry
-        if ident in s:
-            return True
-        s.add(ident)
-        q.append(ident)
-        if len(q) > self.per_device:
-            s.discard(q.popleft())
-        return False
-
-
-class RecordingLineBytes(bytes):
-    """A whole recording line standing in for its payload (the replay's fast path); a reject
-    stores the payload part of it, like any other reject."""
-
-
-class Reject(Exception):
-    def __init__(self, category: str, reason: str) -> None:
-        super().__init__(reason)
-        self.category = category
-        self.reason = reason
+    if isinstance(rx, float):
+        return rx if math.isfinite(rx) else None
+    if isinstance(rx, int) and not isinstance(rx, bool):
+        return float(rx)
+    if isinstance(rx, datetime):
+        return epoch(rx) if rx.utcoffset() is not None else None
+    return None
 
 
 class Processor:
@@ -221,19 +70,24 @@ class Processor:
                  publish: bool = True,
                  next_ids: dict[str, int] | None = None,
                  known_beds: Iterable[tuple[int, str, str]] = (),
-                 known_messages: Iterable[tuple[str, Any]] = ()) -> None:
+                 known_messages: Iterable[tuple[str, Any]] = (),
+                 known_retained_rejects: Iterable[tuple[str, str]] = ()) -> None:
         self.cfg = config or Config()
+        #: (topic, digest) of retained messages already stored as rejects: the broker sends
+        #: a retained message again on every subscribe, it is not stored again
+        self._retained_rejects: set[tuple[str, str]] = set(known_retained_rejects)
+        self._retained_key: tuple[str, str] | None = None
         self.rules = rules
         #: build the messages a live sink publishes (a replay into a database needs none)
         self.publish = publish
         ids = next_ids or {}
         self._next_message = ids.get("messages", 1)
         self._next_bed = ids.get("beds", 1)
-        self.beds: dict[tuple[str, str], _Bed] = {}
+        self.beds: dict[tuple[str, str], BedState] = {}
         for bed_id, unit, bed in known_beds:
-            self.beds[(unit, bed)] = _Bed(bed_id, unit, bed)
+            self.beds[(unit, bed)] = BedState(bed_id, unit, bed)
             self._next_bed = max(self._next_bed, bed_id + 1)
-        self.dedup = _Dedup(self.cfg.ingest.dedup_per_device)
+        self.dedup = Dedup(self.cfg.ingest.dedup_per_device)
         for device, ident in known_messages:
             self.dedup.check_and_add(device, ident)
         self.counters = Counters()
@@ -261,13 +115,35 @@ class Processor:
         out, self.out = self.out, Outputs()
         return out
 
-    def feed(self, topic: str, payload: bytes | str | dict, rx: datetime | float) -> None:
-        """Process one received message. Never raises for bad input: it becomes a reject."""
-        rx_t = rx if isinstance(rx, float) else epoch(rx)
+    def feed(self, topic: str, payload: bytes | str | dict, rx: Any, *,
+             retained: bool = False) -> None:
+        """Process one received message. Never raises for bad input: it becomes a reject.
+
+        ``rx`` is the arrival time: epoch seconds (int or float) or an aware datetime.
+        Anything else (a naive datetime, text, NaN) is a reject ``bad_arrival_time``.
+        ``retained``: the broker's retained copy of a message, which it sends again on every
+        subscribe; one already stored as a reject counts as a duplicate."""
+        key = None
+        if retained and isinstance(payload, (bytes, str)):
+            key = (topic, raw_digest(payload))
+            if key in self._retained_rejects:
+                self.counters.duplicates += 1
+                self.out.duplicates += 1
+                return
+        self._retained_key = key
         try:
-            self._feed(topic, payload, rx_t)
-        except Reject as r:
-            self._reject(r.category, r.reason, topic, payload, rx_t)
+            rx_t = arrival_epoch(rx)
+            if rx_t is None:
+                self._reject("bad_arrival_time",
+                             f"arrival time: expected epoch seconds or an aware datetime, "
+                             f"got {short(rx)} ({type(rx).__name__})", topic, payload, None)
+                return
+            try:
+                self._feed(topic, payload, rx_t)
+            except Reject as r:
+                self._reject(r.category, r.reason, topic, payload, rx_t)
+        finally:
+            self._retained_key = None
 
     def reject_unreadable(self, topic: str, raw: bytes | str, rx: float | None,
                           reason: str, category: str = "unreadable") -> None:
@@ -325,16 +201,42 @@ class Processor:
                                       f"{ing.max_payload_bytes} bytes (not parsed)")
         tp = self._route(topic)
         model = PAYLOAD_MODELS[tp.kind]
+        index = None
         try:
             if isinstance(payload, dict):
                 msg = model.model_validate(payload)
             else:
                 msg = model.model_validate_json(payload)
         except ValidationError as e:
-            raise Reject(_category(e), format_validation_error(e)) from None
-        self._accept(tp, topic, msg, rx, payload)
+            if tp.kind != "obs" or not _only_in_observations(e):
+                raise Reject(category_of(e), format_validation_error(e)) from None
+            msg, index = self._good_observations(topic, payload, rx, e)
+        self._accept(tp, topic, msg, rx, payload, index)
 
-    def _accept(self, tp, topic: str, msg: Any, rx: float, payload: bytes | str | dict) -> None:
+    def _good_observations(self, topic: str, payload: bytes | str | dict, rx: float,
+                           err: ValidationError) -> tuple[ObsMessage, list[int]]:
+        """An obs message whose envelope is valid but some observations are not: each bad
+        observation is a reject of its own (with its index), the rest go on. When none is
+        valid, the message is one reject."""
+        doc = payload if isinstance(payload, dict) else json.loads(payload)
+        env = _ObsEnvelope.model_validate(doc)
+        good, index, bad = [], [], []
+        for i, o in enumerate(env.obs):
+            try:
+                good.append(Observation.model_validate(o))
+                index.append(i)
+            except ValidationError as e:
+                bad.append((i, e))
+        if not good:
+            raise Reject(category_of(err), format_validation_error(err))
+        for i, e in bad:
+            self._reject(category_of(e), format_validation_error(e, prefix=f"obs[{i}]."),
+                         topic, payload, rx, i, env.device, env.seq)
+        return ObsMessage.model_construct(v=env.v, device=env.device, seq=env.seq,
+                                          time=env.time, obs=good), index
+
+    def _accept(self, tp, topic: str, msg: Any, rx: float, payload: bytes | str | dict,
+                index: list[int] | None = None) -> None:
         ing = self.cfg.ingest
         t = epoch(msg.time)
         if t - rx > ing.max_clock_skew_s:
@@ -343,7 +245,7 @@ class Processor:
                          "check the gateway's clock")
         bed = self.beds.get((tp.unit, tp.bed)) or self._bed(tp.unit, tp.bed)
         if tp.kind == "obs":
-            self._obs(bed, topic, msg, t, rx, payload)
+            self._obs(bed, topic, msg, t, rx, payload, index)
         else:
             ident = (tp.kind, t, hashlib.sha1(msg.model_dump_json().encode()).hexdigest()[:16])
             if self.dedup.check_and_add(topic, ident):
@@ -358,15 +260,15 @@ class Processor:
             else:
                 self._command(bed, mid, msg, t, rx)
 
-    def _bed(self, unit: str, bed_name: str) -> _Bed:
+    def _bed(self, unit: str, bed_name: str) -> BedState:
         bed = self.beds.get((unit, bed_name))
         if bed is None:
-            bed = self.beds[(unit, bed_name)] = _Bed(self._next_bed, unit, bed_name)
+            bed = self.beds[(unit, bed_name)] = BedState(self._next_bed, unit, bed_name)
             self._next_bed += 1
             self.out.beds.append({"id": bed.id, "unit": unit, "bed": bed_name})
         return bed
 
-    def _message_row(self, bed: _Bed, topic: str, kind: str, rx: float, t: float,
+    def _message_row(self, bed: BedState, topic: str, kind: str, rx: float, t: float,
                      device: str | None, seq: int | None, late: bool, n_obs: int,
                      digest: str | None = None) -> int:
         mid = self._next_message
@@ -378,15 +280,15 @@ class Processor:
             "digest": digest})
         return mid
 
-    def _obs(self, bed: _Bed, topic: str, msg: ObsMessage, t: float, rx: float,
-             payload: bytes | str | dict) -> None:
+    def _obs(self, bed: BedState, topic: str, msg: ObsMessage, t: float, rx: float,
+             payload: bytes | str | dict, index: list[int] | None = None) -> None:
         if self.dedup.check_and_add(msg.device, obs_identity(msg.seq, t)):
             self.counters.duplicates += 1
             self.out.duplicates += 1
             return
         late = t < bed.newest - self.cfg.ingest.late_after_s
         mid = self._message_row(bed, topic, "obs", rx, t, msg.device, msg.seq, late,
-                                len(msg.obs))
+                                len(msg.obs) if index is None else index[-1] + 1)
         if late:
             self.counters.late += 1
         skew = self.cfg.ingest.max_clock_skew_s
@@ -397,7 +299,12 @@ class Processor:
         latest = bed.latest
         bed_id = bed.id
         n = 0
-        for i, o in enumerate(msg.obs):
+        # the bed's clock follows measurement time but may not run ahead of arrival by more
+        # than bed_clock_lead_s: a value dated further ahead is stored, yet cannot stay
+        # current against values that arrive after it
+        ahead = rx + self.cfg.ingest.bed_clock_lead_s
+        for k, o in enumerate(msg.obs):
+            i = k if index is None else index[k]
             p = o.param
             c = conv.get((p, o.unit))
             if c is None:
@@ -435,17 +342,18 @@ class Processor:
                 nonvalid[p] = status
                 continue
             cur = latest.get(p)
-            if cur is None or ot >= cur.time:
+            if cur is None or ot >= cur.time or cur.time > ahead:
                 latest[p] = Current(value, ot)
                 new.add(p)
         self.counters.observations += n
         if late:
             return
-        if t > bed.newest:
-            bed.newest = t
+        clock = t if t <= ahead else ahead
+        if clock > bed.newest:
+            bed.newest = clock
         self._derive(bed, new, nonvalid, msg.device)
 
-    def _derive(self, bed: _Bed, new: set[str], nonvalid: dict[str, str], device: str) -> None:
+    def _derive(self, bed: BedState, new: set[str], nonvalid: dict[str, str], device: str) -> None:
         now = bed.newest
         max_age = self._max_age
         cur = {p: c for p, c in bed.latest.items() if now - c.time <= max_age[p]}
@@ -489,7 +397,7 @@ class Processor:
                 body["trends"] = self.rules.trend_directions(bed.key)
             self.out.publish.append((f"hemo/{bed.unit}/{bed.bed}/derived", body, False))
 
-    def _admit(self, bed: _Bed, mid: int, msg: AdmitMessage, t: float, rx: float) -> None:
+    def _admit(self, bed: BedState, mid: int, msg: AdmitMessage, t: float, rx: float) -> None:
         bsa = None
         if msg.discharged:
             bed.reset()
@@ -513,7 +421,7 @@ class Processor:
         if self.rules is not None:
             self._rule_events(self.rules.on_admit(bed.key, t, limits, msg.discharged))
 
-    def _note(self, bed: _Bed, mid: int, msg: NoteMessage, t: float) -> None:
+    def _note(self, bed: BedState, mid: int, msg: NoteMessage, t: float) -> None:
         self.out.notes.append({
             "message_id": mid, "bed_id": bed.id, "time": t, "kind": msg.kind,
             "volume_ml": msg.volume_ml, "over_min": msg.over_min, "param": msg.param,
@@ -522,7 +430,7 @@ class Processor:
             self._rule_events(self.rules.on_note(bed.key, t, msg.kind, msg.volume_ml,
                                                  msg.over_min, msg.param, msg.duration_s))
 
-    def _command(self, bed: _Bed, mid: int, msg: CommandMessage, t: float, rx: float) -> None:
+    def _command(self, bed: BedState, mid: int, msg: CommandMessage, t: float, rx: float) -> None:
         result = "applied"
         if self.rules is None:
             result = "not applied: no rules engine in this pipeline"
@@ -559,31 +467,25 @@ class Processor:
     def _reject(self, category: str, reason: str, topic: str, payload: bytes | str | dict,
                 rx: float | None, obs_index: int | None = None, device: str | None = None,
                 seq: int | None = None) -> None:
-        if isinstance(payload, RecordingLineBytes):
-            try:
-                payload = json.loads(payload)["payload"]
-            except (ValueError, KeyError, TypeError):
-                pass
-        if isinstance(payload, dict):
-            raw = json.dumps(payload, separators=(",", ":"), default=str).encode()
-        elif isinstance(payload, str):
-            raw = payload.encode("utf-8", "surrogateescape")
-        else:
-            raw = bytes(payload)
         self.counters.reject(category)
-        self.out.rejected.append({
-            "rx": rx, "topic": topic[:512], "category": category, "reason": reason,
-            "obs_index": obs_index, "device": device, "seq": seq,
-            "raw": raw[: self.cfg.ingest.stored_raw_bytes], "size": len(raw)})
+        if self._retained_key is not None and len(self._retained_rejects) < 100_000:
+            self._retained_rejects.add(self._retained_key)
+        self.out.rejected.append(reject_row(category, reason, topic, payload, rx, obs_index,
+                                            device, seq, self.cfg.ingest.stored_raw_bytes))
 
 
-def _category(err: ValidationError) -> str:
-    errs = err.errors(include_url=False)
-    first = errs[0]
-    if first["type"] == "json_invalid":
-        return "invalid_json"
-    if first["loc"] and first["loc"][0] == "v":
-        return "bad_version"
-    if any(e["type"] == "missing" for e in errs):
-        return "missing_field"
-    return "bad_field"
+class _ObsEnvelope(BaseModel):
+    """An obs message with its observations left unchecked (to check them one by one)."""
+
+    model_config = ConfigDict(extra="ignore", allow_inf_nan=False)
+    v: Literal[1]
+    device: Annotated[StrictStr, Field(min_length=1, max_length=64, pattern=r"^[\x21-\x7e]+$")]
+    seq: Annotated[StrictInt, Field(ge=0, le=SEQ_MAX)]
+    time: Time
+    obs: Annotated[list[Any], Field(min_length=1, max_length=256)]
+
+
+def _only_in_observations(err: ValidationError) -> bool:
+    """Every error is inside one of the observations (obs[i]...), not in the envelope."""
+    return all(len(e["loc"]) >= 3 and e["loc"][0] == "obs" and isinstance(e["loc"][1], int)
+               for e in err.errors(include_url=False))

@@ -14,6 +14,7 @@ from datetime import datetime, timezone
 from typing import Annotated, Any, Literal, NamedTuple
 
 from pydantic import (
+    AfterValidator,
     AwareDatetime,
     BaseModel,
     BeforeValidator,
@@ -33,35 +34,8 @@ VERSION = 1
 # --------------------------------------------------------------------------- parameters
 
 
-class ParamSpec(NamedTuple):
-    dimension: str
-    meaning: str
-
-    @property
-    def canonical_unit(self) -> str:
-        return CANONICAL[self.dimension]
-
-
-PARAMS: dict[str, ParamSpec] = {
-    "HR": ParamSpec("rate", "heart rate (ECG)"),
-    "PR": ParamSpec("rate", "pulse rate (oximeter or arterial line)"),
-    "ABP_SYS": ParamSpec("pressure", "invasive arterial pressure, systolic"),
-    "ABP_DIA": ParamSpec("pressure", "invasive arterial pressure, diastolic"),
-    "ABP_MEAN": ParamSpec("pressure", "invasive arterial pressure, mean"),
-    "NIBP_SYS": ParamSpec("pressure", "cuff pressure, systolic (intermittent)"),
-    "NIBP_DIA": ParamSpec("pressure", "cuff pressure, diastolic (intermittent)"),
-    "NIBP_MEAN": ParamSpec("pressure", "cuff pressure, mean (intermittent)"),
-    "CVP": ParamSpec("pressure", "central venous pressure (mean)"),
-    "PAP_SYS": ParamSpec("pressure", "pulmonary artery pressure, systolic"),
-    "PAP_DIA": ParamSpec("pressure", "pulmonary artery pressure, diastolic"),
-    "PAP_MEAN": ParamSpec("pressure", "pulmonary artery pressure, mean"),
-    "PAWP": ParamSpec("pressure", "pulmonary artery wedge pressure (intermittent)"),
-    "CO": ParamSpec("flow", "cardiac output"),
-    "SV": ParamSpec("volume", "stroke volume"),
-    "SPO2": ParamSpec("saturation", "peripheral oxygen saturation"),
-    "RR": ParamSpec("rate", "respiratory rate"),
-    "TEMP": ParamSpec("temperature", "core temperature"),
-}
+# the parameter table lives in params.py (with plausible ranges, maximum ages, channels)
+from .params import PARAMS, ParamSpec  # noqa: E402,F401
 
 Status = Literal["valid", "questionable", "invalid", "calibrating", "test"]
 
@@ -211,7 +185,10 @@ def parse_time(text: Any, what: str = "time") -> float:
     if t.tzinfo is None:
         raise ValueError(f"{what} {text[:64]!r} has no UTC offset: give Z or +hh:mm, e.g. "
                          "2026-12-01T08:00:00Z")
-    return epoch(t)
+    try:
+        return epoch(t)
+    except OverflowError:           # year 1 with a positive offset is before year 1 in UTC
+        raise ValueError(f"{what} {text[:64]!r} is out of range") from None
 
 
 def parse_time_or_none(text: Any) -> float | None:
@@ -244,7 +221,39 @@ def _rfc3339_only(v: Any) -> Any:
     return v
 
 
-Time = Annotated[AwareDatetime, BeforeValidator(_rfc3339_only)]
+#: the plausible measurement times: a clock this far off is a broken clock, not a reading
+EARLIEST = datetime(2000, 1, 1, tzinfo=timezone.utc)
+LATEST = datetime(2100, 1, 1, tzinfo=timezone.utc)
+
+
+def _plausible_time(v: datetime) -> datetime:
+    try:
+        utc = v.astimezone(timezone.utc)
+    except (OverflowError, ValueError):     # e.g. year 1 with a positive offset
+        raise ValueError("timestamp is out of range (before year 1 or after 9999 in UTC)")
+    if not EARLIEST <= utc < LATEST:
+        raise ValueError(f"timestamp {utc.year} is not a plausible measurement time "
+                         f"(accepted: {EARLIEST.year} to {LATEST.year - 1}); check the "
+                         "gateway's clock")
+    return v
+
+
+def _no_nul(v: str) -> str:
+    # no database stores U+0000 in text (PostgreSQL refuses it), and no reading needs it
+    if "\x00" in v:
+        raise ValueError("text must not contain the NUL character (U+0000)")
+    return v
+
+
+def _text(max_length: int, min_length: int = 0) -> Any:
+    """Text bounded to what every supported database column can store."""
+    return Annotated[StrictStr, Field(min_length=min_length, max_length=max_length),
+                     AfterValidator(_no_nul)]
+
+
+Time = Annotated[AwareDatetime, BeforeValidator(_rfc3339_only), AfterValidator(_plausible_time)]
+#: a 64-bit signed integer: the widest that SQLite and PostgreSQL store
+SEQ_MAX = 2 ** 63 - 1
 Number = StrictFloat   # strict: accepts JSON integers and floats, never strings or booleans
 PositiveNumber = Annotated[Number, Field(gt=0)]
 
@@ -253,9 +262,9 @@ _MODEL = ConfigDict(extra="ignore", allow_inf_nan=False, frozen=True)
 
 class Observation(BaseModel):
     model_config = _MODEL
-    param: StrictStr
+    param: _text(16, 1)
     value: Number
-    unit: StrictStr
+    unit: _text(16)
     status: Status = "valid"
     time: Time | None = None
 
@@ -264,7 +273,7 @@ class ObsMessage(BaseModel):
     model_config = _MODEL
     v: Literal[1]
     device: Annotated[StrictStr, Field(min_length=1, max_length=64, pattern=r"^[\x21-\x7e]+$")]
-    seq: Annotated[StrictInt, Field(ge=0)]
+    seq: Annotated[StrictInt, Field(ge=0, le=SEQ_MAX)]
     time: Time
     obs: Annotated[list[Observation], Field(min_length=1, max_length=256)]
 
@@ -281,7 +290,7 @@ class AdmitMessage(BaseModel):
     time: Time
     height_cm: Annotated[Number, Field(gt=30, le=260)] | None = None
     weight_kg: Annotated[Number, Field(gt=0.3, le=500)] | None = None
-    limits: dict[StrictStr, Limit] = Field(default_factory=dict)
+    limits: Annotated[dict[_text(16, 1), Limit], Field(max_length=64)] = Field(default_factory=dict)
     discharged: StrictBool = False
 
 
@@ -300,9 +309,9 @@ class NoteMessage(BaseModel):
                   "free_text", "deterioration_onset"]
     volume_ml: PositiveNumber | None = None
     over_min: Annotated[Number, Field(ge=0)] | None = None
-    param: StrictStr | None = None
-    by: Annotated[StrictStr, Field(max_length=64)] | None = None
-    text: Annotated[StrictStr, Field(max_length=500)] | None = None
+    param: _text(16, 1) | None = None
+    by: _text(64) | None = None
+    text: _text(500) | None = None
     duration_s: Annotated[Number, Field(ge=0)] | None = None
 
     @model_validator(mode="after")
@@ -325,8 +334,8 @@ class CommandMessage(BaseModel):
     v: Literal[1]
     time: Time
     action: Literal["acknowledge", "pause_audio"]
-    alarm: Annotated[StrictStr, Field(min_length=1, max_length=128)]
-    by: Annotated[StrictStr, Field(min_length=1, max_length=64)]
+    alarm: _text(128, 1)
+    by: _text(64, 1)
 
 
 PAYLOAD_MODELS: dict[str, type[BaseModel]] = {

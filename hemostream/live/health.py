@@ -138,4 +138,7 @@ def log_line(d: dict[str, Any]) -> str:
             f"shed {d['shed_total']}, broker "
             + ("connected" if d["broker"]["connected"] else "DOWN")
             + (f", outages {d['broker']['outages']} ({d['broker']['outage_s']:.1f} s)"
-               if d["broker"]["outages"] else ""))
+               if d["broker"]["outages"] else "")
+            + (f", DATABASE WAITING {d['database']['waiting_s']:.0f} s "
+               f"({d['database']['reason']})"
+               if d.get("database", {}).get("state") == "waiting" else ""))

@@ -220,7 +220,8 @@ class MqttTransport:
         try:
             async for m in client.messages:
                 yield Incoming(m.topic.value, m.payload if isinstance(m.payload, bytes)
-                               else bytes(str(m.payload), "utf-8"), m.qos, m.mid, gen, clock())
+                               else bytes(str(m.payload), "utf-8"), m.qos, m.mid, gen, clock(),
+                               bool(m.retain))
         except aiomqtt.MqttError as e:
             self.connected = False
             raise TransportError(f"connection to {self.address} lost: {e}") from None
@@ -234,7 +235,7 @@ class MqttTransport:
         while q is not None and not q.empty():
             m = q.get_nowait()
             out.append(Incoming(m.topic.value, m.payload, m.qos, m.mid,
-                                self.generation, self.clock()))
+                                self.generation, self.clock(), bool(m.retain)))
         return out
 
     def ack(self, generation: int, mid: int, qos: int) -> bool:

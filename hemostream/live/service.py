@@ -26,6 +26,7 @@ import logging
 import random
 import time
 from collections import deque
+from dataclasses import dataclass
 from typing import Any, Callable, Literal
 
 from sqlalchemy import event
@@ -37,7 +38,7 @@ from ..core.rules.protocol import RulesLayer
 from ..core.wire import encode, format_epoch, input_filters
 from ..core.wire import status_topic as instance_status_topic
 from ..pipeline import make_rules
-from ..store import StoreError, Writer, load_resume, open_engine, rows_of
+from ..store import StoreError, Writer, load_resume, open_engine, record_config, rows_of
 from .health import Health, log_line, status_payload
 from .transport import Incoming, Transport, TransportError
 
@@ -45,6 +46,17 @@ log = logging.getLogger("hemostream.live")
 
 _TICK = object()
 _STOP = object()
+
+
+@dataclass
+class External:
+    """Input from another intake (the HL7 MLLP listener): ``feed(processor, rx)`` runs on the
+    processing loop; ``done`` resolves once the batch holding its rows is committed."""
+
+    feed: Callable[[Processor, float], Any]
+    done: asyncio.Future
+    rx: float
+    result: Any = None
 
 
 def subscription_filters(cfg: Config) -> list[str]:
@@ -201,11 +213,30 @@ class Service:
         self.ready = asyncio.Event()        # set once subscribed the first time
         self._outstanding = 0               # batches submitted, not yet committed
         self._committed_evt = asyncio.Event()
+        #: other intakes (objects with async start() / close()), e.g. the HL7 MLLP listener
+        self.intakes: list[Any] = []
+        self._external: set[asyncio.Future] = set()
 
     # ------------------------------------------------------------------ control
 
     def stop(self) -> None:
         self._stop.set()
+
+    async def submit_external(self, feed: Callable[[Processor, float], Any]) -> Any:
+        """Run ``feed(processor, rx)`` on the processing loop and return its result once the
+        rows it produced are committed (raises when they cannot be: the caller must not
+        acknowledge its input then)."""
+        if self._stop.is_set() or self.fatal is not None:
+            raise RuntimeError(self.fatal or "the service is stopping")
+        item = External(feed, self._loop.create_future(), self.clock())
+        self._external.add(item.done)
+        self.health.received += 1
+        await self.inq.put(item)
+        try:
+            await item.done
+        finally:
+            self._external.discard(item.done)
+        return item.result
 
     def _fail(self, message: str) -> None:
         if self.fatal is None:
@@ -232,15 +263,19 @@ class Service:
         except StoreError as e:
             log.error("%s", e)
             return 1
-        sqlite_synchronous(engine, b.sqlite_synchronous)
+        sqlite_synchronous(engine, cfg.store.sqlite_synchronous)
+        await asyncio.to_thread(record_config, engine, cfg)   # the configuration in force
         resume = await asyncio.to_thread(load_resume, engine)
         self.proc = Processor(cfg, rules=self.rules, next_ids=resume.next_ids,
-                              known_beds=resume.beds, known_messages=resume.messages)
+                              known_beds=resume.beds, known_messages=resume.messages,
+                              known_retained_rejects=resume.retained_rejects)
         self.writer = Writer(engine, max_batches=16)
         self.inq: asyncio.Queue = asyncio.Queue(b.queue_size)
         log.info("hemostream %s: database %s, %d bed(s) and %d recent message identities "
                  "known, subscribing to %s", cfg.instance, _safe_url(self.db_url),
                  len(resume.beds), len(resume.messages), ", ".join(self.filters))
+        for intake in self.intakes:
+            await intake.start()
         conn = asyncio.create_task(self._connection_loop(), name="hemostream-connection")
         proc = asyncio.create_task(self._process_loop(), name="hemostream-process")
         tick = asyncio.create_task(self._ticker(), name="hemostream-ticker")
@@ -258,6 +293,8 @@ class Service:
 
     async def _shutdown(self, conn, proc, tick, stop, engine) -> None:
         log.info("stopping: no more messages taken; flushing the database")
+        for intake in self.intakes:
+            await intake.close()
         for task in (conn, tick, stop):
             task.cancel()
         await asyncio.gather(conn, tick, stop, return_exceptions=True)
@@ -269,7 +306,13 @@ class Service:
                 self._fail(f"database: {e}")
         writer = self.writer
         try:
-            await asyncio.to_thread(writer.flush)
+            await asyncio.wait_for(asyncio.to_thread(writer.flush),
+                                   self.cfg.store.shutdown_wait_s)
+        except asyncio.TimeoutError:
+            writer.give_up()        # the database is away: what is unwritten stays unacked
+            self._fail(f"the database did not take the last batches within "
+                       f"{self.cfg.store.shutdown_wait_s:g} s ({writer.trouble}); they were "
+                       f"not acknowledged, so the broker delivers them again")
         except StoreError as e:
             self._fail(str(e))
         # the commit callbacks hop back to this loop: let them run, so the acks go out
@@ -292,6 +335,9 @@ class Service:
             await asyncio.to_thread(writer.close)
         except StoreError as e:
             self._fail(str(e))
+        for f in list(self._external):      # not committed: their senders get no ACK
+            if not f.done():
+                f.set_exception(RuntimeError(self.fatal or "stopped before the commit"))
         engine.dispose()
         h = self.health
         log.info("stopped: %d message(s) received, %d stored, %d duplicate(s) dropped, "
@@ -372,7 +418,10 @@ class Service:
             if item is _STOP:
                 break
             if item is not _TICK:
-                proc.feed(item.topic, item.payload, item.rx)
+                if isinstance(item, External):
+                    item.result = item.feed(proc, item.rx)
+                else:
+                    proc.feed(item.topic, item.payload, item.rx, retained=item.retain)
                 batch.append(item)
             now = mono()
             if now >= next_tick:
@@ -399,13 +448,14 @@ class Service:
         rows = rows_of(out)
         if not rows and not batch:
             return
-        acks = [(m.generation, m.mid, m.qos) for m in batch]
+        acks = [(m.generation, m.mid, m.qos) for m in batch if not isinstance(m, External)]
+        externals = [m.done for m in batch if isinstance(m, External)]
         oldest = min((m.rx for m in batch), default=self.clock())
         loop = self._loop
         n = len(batch)
 
         def on_done() -> None:   # writer thread, after COMMIT
-            loop.call_soon_threadsafe(self._committed, acks, n, oldest)
+            loop.call_soon_threadsafe(self._committed, acks, n, oldest, externals)
 
         writer = self.writer
         self._outstanding += 1
@@ -420,8 +470,12 @@ class Service:
                        f"acknowledged): {e}")
             raise
 
-    def _committed(self, acks: list[tuple[int, int, int]], n: int, oldest_rx: float) -> None:
+    def _committed(self, acks: list[tuple[int, int, int]], n: int, oldest_rx: float,
+                   externals: list[asyncio.Future] = ()) -> None:
         self._outstanding -= 1
+        for f in externals:
+            if not f.done():
+                f.set_result(None)
         h = self.health
         ack = self.t.ack
         for gen, mid, qos in acks:
@@ -441,7 +495,7 @@ class Service:
                 self.inq.put_nowait(_TICK)
             if self.writer.error is not None:
                 self._fail(f"database writes failed, stopping (nothing unstored was "
-                           f"acknowledged): {self.writer.error}")
+                           f"acknowledged): {self.writer.error.__class__.__name__}")
                 return
             self.outbox.prune()
             if time.monotonic() >= next_health:
@@ -452,6 +506,11 @@ class Service:
         h = self.health
         d = h.report(self.clock(), self.inq.qsize(), self.inq.maxsize,
                      h.received - h.stored, self.writer.q.qsize())
+        w = self.writer
+        d["database"] = {"state": "waiting" if w.trouble else "ok", "reason": w.trouble,
+                         "waiting_s": (round(self.clock() - w.trouble_since, 1)
+                                       if w.trouble_since else 0.0),
+                         "retries": w.retries, "refused_messages": w.refused}
         self.last_health = d
         if self.t.connected:
             self.t.publish(self.status_topic, encode(d), 1, False)

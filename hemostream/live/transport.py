@@ -31,6 +31,8 @@ class Incoming:
     mid: int
     generation: int
     rx: float = 0.0
+    #: the broker's retained copy (sent again on every subscribe)
+    retain: bool = False
 
 
 class Transport(Protocol):

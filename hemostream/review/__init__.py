@@ -1,12 +1,19 @@
 """Reviewing alarm behaviour: comparing configurations on a recording, and per-bed reports.
 
 ``compare``  replays one recording under several configurations and measures the alarm
-             burden and detection delays of each (:mod:`hemostream.review.compare`).
+             burden and detection delays of each.
 ``report``   a self-contained HTML page per bed (and a unit overview) with aligned plots of
-             the stored values, limits, alarm periods and notes (:mod:`hemostream.review.report`).
+             the stored values, limits, alarm periods and notes.
 
 Both read what the processing core stored (alarm_events, notes, commands, observations,
-derived values); :mod:`hemostream.review.data` turns those rows into alarm periods.
+derived values, the configuration in force). Modules by concern:
+
+- database reads: :mod:`.queries`
+- pure computation: :mod:`.periods` (alarm periods, alarm state over time), :mod:`.metrics`
+  (alarm burden, detection), :mod:`.limits` (limits in force), :mod:`.panels` (panel data)
+- running: :mod:`.runner` (compare and report, in order), :mod:`.cli` (the commands)
+- output: :mod:`.tables` (terminal, CSV, JSON), :mod:`.plots` and :mod:`.svg` (figures),
+  :mod:`.pages` (HTML), :mod:`.text` (times and events in words)
 
 Safety: these are aids for reviewing alarm behaviour. hemostream is a secondary display and
 notification aid, not a medical device; the bedside monitor stays the primary alarm source.

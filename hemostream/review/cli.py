@@ -15,7 +15,7 @@ err = Console(stderr=True, soft_wrap=True)
 
 def cmd_compare(args) -> int:
     from ..config import ConfigError, load_config
-    from . import compare as cmp
+    from . import runner, tables
 
     rec = Path(args.recording)
     if not rec.is_file():
@@ -34,7 +34,7 @@ def cmd_compare(args) -> int:
     if args.ack_within <= 0 or args.detect_within <= 0:
         err.print("[red]error:[/] --ack-within and --detect-within must be positive minutes")
         return 2
-    labels = cmp.labels_for(args.config)
+    labels = runner.labels_for(args.config)
     if args.label:
         if len(args.label) != len(args.config):
             err.print(f"[red]error:[/] {len(args.label)} --label for {len(args.config)} "
@@ -50,7 +50,7 @@ def cmd_compare(args) -> int:
                       TextColumn("{task.percentage:>3.0f}%"), TimeElapsedColumn(),
                       console=err, disable=not show, transient=True) as prog:
             tasks = [prog.add_task(f"replaying under {lab}", total=size) for lab in labels]
-            result = cmp.compare(
+            result = runner.compare(
                 rec, list(args.config), ack_within_s=args.ack_within * 60.0,
                 detect_within_s=args.detect_within * 60.0, keep_dir=args.keep,
                 workers=args.workers, labels=labels,
@@ -66,15 +66,15 @@ def cmd_compare(args) -> int:
             return 1
         raise
     if args.json:
-        Path(args.json).write_text(cmp.to_json(result) + "\n", encoding="utf-8")
+        Path(args.json).write_text(tables.to_json(result) + "\n", encoding="utf-8")
     if args.csv:
-        Path(args.csv).write_text(cmp.to_csv(result), encoding="utf-8", newline="")
+        Path(args.csv).write_text(tables.to_csv(result), encoding="utf-8", newline="")
     if args.format == "json":
-        sys.stdout.write(cmp.to_json(result) + "\n")
+        sys.stdout.write(tables.to_json(result) + "\n")
     elif args.format == "csv":
-        sys.stdout.write(cmp.to_csv(result))
+        sys.stdout.write(tables.to_csv(result))
     else:
-        cmp.render(result, Console(soft_wrap=True))
+        tables.render(result, Console(soft_wrap=True))
     sys.stdout.flush()
     for f in (args.json, args.csv):
         if f:
@@ -85,7 +85,7 @@ def cmd_compare(args) -> int:
 def cmd_report(args) -> int:
     from ..config import ConfigError, load_config
     from ..store import StoreError, open_engine
-    from . import report as rep
+    from . import runner as rep
 
     try:
         cfg = load_config(args.config)

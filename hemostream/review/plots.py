@@ -3,9 +3,12 @@ panel per group of parameters, all on the same time axis.
 
 Every figure has the same width and the same left and right margins, so their time axes line
 up when stacked on a page. Artists a reader may want to hover (alarm spans, notes,
-fluid-challenge results) get an SVG id (``gid``) and a hover text; :func:`svg_of` turns the
+fluid-challenge results) get an SVG id (``gid``) and a hover text; :func:`.svg.svg_of` turns the
 figure into inline SVG with those texts as ``<title>`` elements and ids made unique per
-figure.
+figure (:mod:`.svg`).
+
+Somewhat over 400 lines on purpose: the two figure builders (time line, value panel) share one
+drawing style (colours, axes, alarm shading, notes), which is kept in one place here.
 
 Colours: alarm priorities follow the IEC 60601-1-8 convention (high red, medium yellow, low
 cyan); values are drawn in dark neutral tones told apart by line style, so that no value
@@ -14,12 +17,8 @@ colour can be mistaken for an alarm colour.
 
 from __future__ import annotations
 
-import io
 import math
-import re
-from dataclasses import dataclass, field
-from datetime import datetime, timezone
-from html import escape
+from datetime import timezone
 from typing import Any
 
 import matplotlib
@@ -30,7 +29,11 @@ from matplotlib.figure import Figure  # noqa: E402
 from matplotlib.patches import Patch  # noqa: E402
 from matplotlib.lines import Line2D  # noqa: E402
 
-from .data import AlarmPeriod, InfoEvent, state_segments  # noqa: E402
+from .limits import LimitLine  # noqa: E402
+from .panels import PanelData  # noqa: E402
+from .periods import AlarmPeriod, InfoEvent, state_segments  # noqa: E402
+from .svg import Figures, finish  # noqa: E402
+from .text import alarm_hover, fluid_text, hhmmss, note_hover, span_text, when  # noqa: E402
 
 matplotlib.rcParams.update({
     "svg.fonttype": "none",          # text stays text: smaller, searchable, crisp
@@ -55,80 +58,11 @@ DAY = 86400.0
 NOTE_LABELS = {"fluid_bolus": "bolus", "line_flush": "flush", "zeroing": "zeroing",
                "reposition": "reposition", "sample_draw": "sample", "free_text": "note",
                "deterioration_onset": "onset"}
-NOTE_STYLES = {"deterioration_onset": ("#000000", "-", 1.4)}
 
 
 def x_of(t: float) -> float:
     """Matplotlib date number of epoch seconds (matplotlib's epoch is 1970-01-01 UTC)."""
     return t / DAY
-
-
-def hhmmss(t: float) -> str:
-    return datetime.fromtimestamp(t, timezone.utc).strftime("%H:%M:%S")
-
-
-def when(t: float) -> str:
-    return datetime.fromtimestamp(t, timezone.utc).strftime("%Y-%m-%d %H:%M:%SZ")
-
-
-def span_text(s: float) -> str:
-    s = int(round(s))
-    if s < 60:
-        return f"{s} s"
-    if s < 3600:
-        return f"{s // 60} min {s % 60:02d} s"
-    return f"{s // 3600} h {s % 3600 // 60:02d} min"
-
-
-@dataclass
-class Series:
-    label: str
-    t: list[float]
-    v: list[float]
-    style: str = "line"        # line | points
-    ink: int = 0
-    width: float = 1.2
-    dash: str = "-"
-    gap_s: float = 30.0         # a longer gap between values breaks the line
-    steps: bool = False         # stored on change: the value holds until the next one
-    hover: str = ""
-
-
-@dataclass
-class LimitLine:
-    name: str                  # e.g. "HR high"
-    side: str                  # low | high
-    steps: list[tuple[float, float, float]]   # (from, to, threshold)
-    source: str = "configuration"
-
-
-@dataclass
-class RefLine:
-    label: str
-    value: float
-
-
-@dataclass
-class PanelData:
-    key: str
-    title: str
-    unit: str
-    series: list[Series] = field(default_factory=list)
-    invalid: list[tuple[float, float, str]] = field(default_factory=list)   # t, v, status
-    limits: list[LimitLine] = field(default_factory=list)
-    refs: list[RefLine] = field(default_factory=list)
-    fluid: list[InfoEvent] = field(default_factory=list)
-
-
-@dataclass
-class Figures:
-    """What was drawn, for the page and for checks: counts per figure."""
-
-    svg: str
-    png: bytes | None
-    alarm_spans: int
-    notes: int
-    hover: dict[str, str]
 
 
 def _breaks(t: list[float], v: list[float], gap: float) -> tuple[list[float], list[float]]:
@@ -214,49 +148,6 @@ def _time_axis(ax, t0: float, t1: float) -> None:
             color="#666666")
 
 
-def alarm_hover(p: AlarmPeriod, end: float, pri: str | None = None) -> str:
-    seg = p.end_or(end)
-    parts = [f"{p.rule} ({pri or p.peak_priority} priority, {p.category})",
-             f"{when(p.start)} to {when(seg) if p.end is not None else 'still active at ' + when(seg)}"
-             f" ({span_text(seg - p.start)})"]
-    if p.message:
-        parts.append(p.message)
-    for t, by in p.acks:
-        parts.append(f"acknowledged {hhmmss(t)}" + (f" by {by}" if by else ""))
-    if p.escalated:
-        parts.append("escalated to high priority")
-    if p.clear_reason:
-        parts.append(f"cleared: {p.clear_reason}")
-    return "\n".join(parts)
-
-
-def note_hover(n: dict[str, Any]) -> str:
-    parts = [f"{n['kind']} at {when(n['time'])}"]
-    if n.get("param"):
-        parts.append(f"channel {n['param']}")
-    if n.get("volume_ml") is not None:
-        parts.append(f"{n['volume_ml']:g} mL"
-                     + (f" over {n['over_min']:g} min" if n.get("over_min") is not None else ""))
-    if n.get("duration_s") is not None:
-        parts.append(f"lasting {n['duration_s']:g} s")
-    if n.get("text"):
-        parts.append(n["text"])
-    if n.get("by"):
-        parts.append(f"by {n['by']}")
-    return "\n".join(parts)
-
-
-def fluid_text(e: InfoEvent) -> str:
-    d = e.details
-    out = d.get("outcome", "result")
-    if out in ("responsive", "not_responsive"):
-        s = (f"{out.replace('_', ' ')}: {d.get('param')} {d.get('change_pct', 0):+.0f} %")
-        if d.get("cvp_change") is not None:
-            s += f", CVP {d['cvp_change']:+.1f}"
-        return s
-    return f"not evaluable: {d.get('reason', '')}"
-
-
 def _shade_alarms(ax, periods: list[AlarmPeriod], t0: float, t1: float, end: float,
                   hover: dict[str, str]) -> tuple[int, set[str]]:
     """Shade the bed's physiological alarm state: one band per stretch of time with the
@@ -277,8 +168,19 @@ def _shade_alarms(ax, periods: list[AlarmPeriod], t0: float, t1: float, end: flo
     return n, used
 
 
-def _note_lines(ax, notes: list[dict[str, Any]], t0: float, t1: float,
-                hover: dict[str, str]) -> int:
+#: how a note is drawn: (colour, line style, line width); the default for every other kind
+NOTE_STYLES = {"deterioration_onset": ("#000000", "-", 1.4)}
+NOTE_DEFAULT = ("#555555", ":", 1.1)
+
+
+def note_style(kind: str) -> tuple[str, str, float]:
+    return NOTE_STYLES.get(kind, NOTE_DEFAULT)
+
+
+def draw_notes(ax, notes: list[dict[str, Any]], t0: float, t1: float,
+               hover: dict[str, str], row: float | None = None) -> int:
+    """Notes in [t0, t1] as vertical lines across the axes, each with its hover text; with
+    ``row`` (the time line) also a labelled marker on that row. Returns how many."""
     n = 0
     for note in notes:
         t = float(note["time"])
@@ -286,8 +188,15 @@ def _note_lines(ax, notes: list[dict[str, Any]], t0: float, t1: float,
             continue
         n += 1
         gid = f"note-{n}"
-        color, ls, lw = NOTE_STYLES.get(note["kind"], ("#555555", ":", 1.1))
-        ax.axvline(x_of(t), color=color, ls=ls, lw=lw, gid=gid, zorder=2)
+        color, ls, lw = note_style(note["kind"])
+        if row is None:
+            ax.axvline(x_of(t), color=color, ls=ls, lw=lw, gid=gid, zorder=2)
+        else:
+            ax.axvline(x_of(t), color=color, ls=ls, lw=lw * 0.7, alpha=0.6, zorder=1)
+            ax.plot([x_of(t)], [row], marker="D" if note["kind"] == "deterioration_onset"
+                    else "o", ms=4.5, color=color, zorder=5, gid=gid)
+            ax.annotate(NOTE_LABELS.get(note["kind"], note["kind"]), (x_of(t), row),
+                        xytext=(3, 2), textcoords="offset points", fontsize=6.5, color=color)
         hover[gid] = note_hover(note)
     return n
 
@@ -421,7 +330,7 @@ def panel_figure(pd: PanelData, periods: list[AlarmPeriod], notes: list[dict[str
                     xytext=(3, 2), textcoords="offset points", ha="left", va="bottom",
                     fontsize=7, color="#555555", zorder=6)
     spans, used = _shade_alarms(ax, periods, t0, t1, end, hover)
-    n_notes = _note_lines(ax, notes, t0, t1, hover)
+    n_notes = draw_notes(ax, notes, t0, t1, hover)
     for k, e in enumerate(pd.fluid, 1):
         if not t0 <= e.time <= t1:
             continue
@@ -439,10 +348,11 @@ def panel_figure(pd: PanelData, periods: list[AlarmPeriod], notes: list[dict[str
             handles.append(Patch(color=PRIORITY_COLORS[pri], alpha=0.35,
                                  label=f"{pri} priority alarm"))
     if n_notes:
-        handles.append(Line2D([], [], color="#555555", ls=":", lw=1.1, label="note"))
+        handles.append(Line2D([], [], color=NOTE_DEFAULT[0], ls=NOTE_DEFAULT[1],
+                              lw=NOTE_DEFAULT[2], label="note"))
     ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(1.01, 1.0), fontsize=7.5,
               frameon=False, borderaxespad=0.0)
-    return _finish(fig, pd.key, hover, spans, n_notes, png)
+    return finish(fig, pd.key, hover, spans, n_notes, png)
 
 
 def timeline_figure(periods: list[AlarmPeriod], info: list[InfoEvent],
@@ -486,20 +396,7 @@ def timeline_figure(periods: list[AlarmPeriod], info: list[InfoEvent],
         for t, _by in p.acks:
             if t0 <= t <= t1:
                 ax.plot([x_of(t)], [y - 0.42], marker="v", ms=4, color="#111111", zorder=5)
-    n_notes = 0
-    for note in notes:
-        t = float(note["time"])
-        if not t0 <= t <= t1:
-            continue
-        n_notes += 1
-        gid = f"note-{n_notes}"
-        color = NOTE_STYLES.get(note["kind"], ("#333333",))[0]
-        ax.plot([x_of(t)], [0], marker="D" if note["kind"] == "deterioration_onset" else "o",
-                ms=4.5, color=color, zorder=5, gid=gid)
-        ax.annotate(NOTE_LABELS.get(note["kind"], note["kind"]), (x_of(t), 0),
-                    xytext=(3, 2), textcoords="offset points", fontsize=6.5, color="#333333")
-        ax.axvline(x_of(t), color="#999999", ls=":", lw=0.8, zorder=1)
-        hover[gid] = note_hover(note)
+    n_notes = draw_notes(ax, notes, t0, t1, hover, row=0)
     k = 0
     for e in info:
         if not t0 <= e.time <= t1 or e.transition not in ("result", "profile"):
@@ -531,46 +428,4 @@ def timeline_figure(periods: list[AlarmPeriod], info: list[InfoEvent],
     if not shown:
         ax.text(0.5, 0.5, "no alarms in this period", transform=ax.transAxes, ha="center",
                 va="center", color="#777777")
-    return _finish(fig, "alarms", hover, n, n_notes, png)
-
-
-def _finish(fig: Figure, key: str, hover: dict[str, str], spans: int, n_notes: int,
-            png: bool) -> Figures:
-    buf = io.StringIO()
-    fig.savefig(buf, format="svg", metadata={"Date": None})
-    svg = svg_of(buf.getvalue(), key, hover)
-    data = None
-    if png:
-        b = io.BytesIO()
-        fig.savefig(b, format="png", dpi=110, metadata={"Software": None})
-        data = b.getvalue()
-    return Figures(svg, data, spans, n_notes, hover)
-
-
-_ID = re.compile(r'\bid="([^"]+)"')
-_URL = re.compile(r"url\(#([^)]+)\)")
-_HREF = re.compile(r'(xlink:href|href)="#([^"]+)"')
-
-
-def _class_of(gid: str) -> str:
-    return re.sub(r"-\d+$", "", gid)
-
-
-def svg_of(text: str, key: str, hover: dict[str, str]) -> str:
-    """Matplotlib's SVG made fit to sit inline in a page next to others: no XML prolog, ids
-    prefixed with ``key`` (unique in the page), a ``<title>`` (hover text) and a class on
-    every hoverable group, scaled to the page width."""
-    text = text[text.index("<svg"):]
-    text = re.sub(r"<metadata>.*?</metadata>\s*", "", text, count=1, flags=re.S)
-    text = _ID.sub(lambda m: f'id="{key}--{m.group(1)}"', text)
-    text = _URL.sub(lambda m: f"url(#{key}--{m.group(1)})", text)
-    text = _HREF.sub(lambda m: f'{m.group(1)}="#{key}--{m.group(2)}"', text)
-    for gid, tip in hover.items():
-        text = text.replace(f'<g id="{key}--{gid}">',
-                            f'<g id="{key}--{gid}" class="{_class_of(gid)}">'
-                            f"<title>{escape(tip, quote=False)}</title>", 1)
-    # scale with the page: keep the viewBox, drop the fixed size
-    text = re.sub(r'<svg([^>]*?)\swidth="[^"]+"\s+height="[^"]+"',
-                  rf'<svg\1 width="100%" class="plot" data-panel="{key}" role="img"', text,
-                  count=1)
-    return text.strip()
+    return finish(fig, "alarms", hover, n, n_notes, png)

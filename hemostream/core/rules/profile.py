@@ -32,7 +32,7 @@ PROFILE_INPUTS = ("CVP", "PAWP", "CI", "SVR")
 
 
 def _default_profile_ranges() -> dict[str, Span]:
-    # Typical adult ranges, critical care texts (from memory; /work/shared/references.md)
+    # Typical adult ranges, critical care texts (from memory; docs/sources.md [marino2014])
     return {"CVP": Span(low=2, high=8), "PAWP": Span(low=6, high=12),
             "CI": Span(low=2.5, high=4.0), "SVR": Span(low=800, high=1200)}
 
@@ -64,7 +64,7 @@ def classify(ranges: Mapping[str, tuple[float, float]],
     """Profile read-out from levels of CVP, PAWP, CI and SVR (None where absent), against
     ``ranges`` (parameter -> (low, high) of the typical range).
 
-    Common practice (critical care teaching; /work/shared/references.md): hypovolemic
+    Common practice (critical care teaching; docs/sources.md): hypovolemic
     (low filling pressures, low CI, high SVR), cardiogenic (high PAWP, low CI, high SVR),
     obstructive (high CVP with PAWP not high, low CI, high SVR), distributive (low SVR,
     CI normal or high). Without PAWP a high CVP with low CI and high SVR cannot tell

@@ -1,5 +1,8 @@
 """Self-contained HTML review pages: one per bed, and a unit overview that links them.
 
+Pages are put together from a bed's loaded rows (:mod:`.queries`), its panels
+(:mod:`.panels`), figures (:mod:`.plots`) and the limits in force (:mod:`.limits`).
+
 A bed page stacks, on one time axis: the alarm time line (one row per rule, bars coloured by
 priority, technical alarms hatched, acknowledgements ticked, notes and information events),
 then arterial pressure (systolic, diastolic, mean; line and cuff), HR, CVP, CO/CI, SVR and
@@ -16,242 +19,17 @@ browser.
 
 from __future__ import annotations
 
-import json
-import statistics
-from dataclasses import dataclass, field
-from datetime import datetime
 from html import escape
-from pathlib import Path
 from typing import Any
 
-from sqlalchemy import select
-
-from ..core.config import Config
-from ..core.processor import epoch
-from ..store import TABLES
 from . import CAUTION, COMPARE_CAUTION
-from .data import (PRIORITIES, AlarmPeriod, BedInfo, InfoEvent, alarm_rows, build_periods,
-                   commands, find_beds, load_beds, notes, time_in_state)
 from . import plots
-from .plots import LimitLine, PanelData, RefLine, Series, hhmmss, span_text, when
+from .limits import LimitsSource, limit_lines
+from .panels import PANEL_KEYS, PANELS, panel_data
+from .periods import PRIORITIES, time_in_state
+from .queries import BedData, BedInfo
+from .text import hhmmss, span_text, when
 
-
-class ReportError(RuntimeError):
-    """A report that cannot be written; the message says why."""
-
-
-def parse_time(text: str, option: str = "time") -> float:
-    try:
-        t = datetime.fromisoformat(text.replace("Z", "+00:00") if text.endswith("Z") else text)
-    except ValueError:
-        raise ValueError(f"{option} {text!r}: expected an RFC 3339 time such as "
-                         "2026-12-01T08:00:00Z") from None
-    if t.tzinfo is None:
-        raise ValueError(f"{option} {text!r}: give a UTC offset, e.g. 2026-12-01T08:00:00Z")
-    return epoch(t)
-
-
-# ----------------------------------------------------------------------------- panels
-
-
-@dataclass(frozen=True)
-class SeriesSpec:
-    source: str          # obs | derived
-    param: str
-    label: str
-    ink: int = 0
-    width: float = 1.2
-    dash: str = "-"
-
-
-@dataclass(frozen=True)
-class PanelSpec:
-    key: str
-    title: str
-    unit: str
-    series: tuple[SeriesSpec, ...]
-    limit_params: tuple[str, ...]
-
-
-PANELS: tuple[PanelSpec, ...] = (
-    PanelSpec("arterial", "Arterial pressure", "mm[Hg]", (
-        SeriesSpec("obs", "ABP_SYS", "systolic (line)", 0, 1.1),
-        SeriesSpec("obs", "ABP_DIA", "diastolic (line)", 1, 1.0),
-        SeriesSpec("obs", "ABP_MEAN", "mean (line)", 2, 1.8),
-        SeriesSpec("obs", "NIBP_SYS", "systolic (cuff)", 0),
-        SeriesSpec("obs", "NIBP_DIA", "diastolic (cuff)", 1),
-        SeriesSpec("obs", "NIBP_MEAN", "mean (cuff)", 2),
-        SeriesSpec("derived", "MAP", "mean (computed)", 2, 1.4, "--"),
-    ), ("SBP", "MAP", "ABP_SYS", "ABP_MEAN", "NIBP_SYS", "NIBP_MEAN")),
-    PanelSpec("hr", "Heart rate", "/min", (
-        SeriesSpec("obs", "HR", "HR", 0, 1.2),
-        SeriesSpec("obs", "PR", "pulse rate", 3, 0.9, "--"),
-    ), ("HR", "PR")),
-    PanelSpec("cvp", "Central venous pressure", "mm[Hg]", (
-        SeriesSpec("obs", "CVP", "CVP", 0, 1.2),
-    ), ("CVP",)),
-    PanelSpec("output", "Cardiac output and index", "CO L/min, CI L/min/m2", (
-        SeriesSpec("obs", "CO", "CO measured", 0, 1.2),
-        SeriesSpec("derived", "CO", "CO computed", 0, 1.2, "--"),
-        SeriesSpec("derived", "CI", "CI", 2, 1.6),
-    ), ("CO", "CI")),
-    PanelSpec("svr", "Systemic vascular resistance", "dyn.s/cm5", (
-        SeriesSpec("derived", "SVR", "SVR", 0, 1.3),
-    ), ("SVR",)),
-    PanelSpec("si", "Shock index", "HR / systolic", (
-        SeriesSpec("derived", "SI", "SI", 0, 1.3),
-    ), ("SI",)),
-)
-PANEL_KEYS = ("alarms",) + tuple(p.key for p in PANELS)
-
-
-@dataclass
-class BedData:
-    bed: BedInfo
-    obs: dict[str, list[tuple[float, float, str]]] = field(default_factory=dict)
-    derived: dict[str, list[tuple[float, float, str, list]]] = field(default_factory=dict)
-    periods: list[AlarmPeriod] = field(default_factory=list)
-    info: list[InfoEvent] = field(default_factory=list)
-    notes: list[dict[str, Any]] = field(default_factory=list)
-    commands: list[dict[str, Any]] = field(default_factory=list)
-    admissions: list[dict[str, Any]] = field(default_factory=list)
-
-
-def load_bed(engine, bed: BedInfo, t0: float, t1: float) -> BedData:
-    obs_t, der_t, adm_t = TABLES["observations"], TABLES["derived"], TABLES["admissions"]
-    obs_params = sorted({s.param for p in PANELS for s in p.series if s.source == "obs"})
-    der_params = sorted({s.param for p in PANELS for s in p.series if s.source == "derived"})
-    bd = BedData(bed)
-    margin = 120.0
-    with engine.connect() as conn:
-        for r in conn.execute(
-                select(obs_t.c.param, obs_t.c.time, obs_t.c.value, obs_t.c.status)
-                .where(obs_t.c.bed_id == bed.id, obs_t.c.param.in_(obs_params),
-                       obs_t.c.time >= t0 - margin, obs_t.c.time <= t1 + margin)
-                .order_by(obs_t.c.time, obs_t.c.id)):
-            bd.obs.setdefault(r.param, []).append((r.time, r.value, r.status))
-        for r in conn.execute(
-                select(der_t.c.param, der_t.c.time, der_t.c.value, der_t.c.unit,
-                       der_t.c.inputs)
-                .where(der_t.c.bed_id == bed.id, der_t.c.param.in_(der_params),
-                       der_t.c.time >= t0 - margin, der_t.c.time <= t1 + margin)
-                .order_by(der_t.c.time, der_t.c.id)):
-            try:
-                inputs = json.loads(r.inputs)
-            except ValueError:
-                inputs = []
-            bd.derived.setdefault(r.param, []).append((r.time, r.value, r.unit, inputs))
-        bd.admissions = [dict(r._mapping) for r in conn.execute(
-            select(adm_t).where(adm_t.c.bed_id == bed.id).order_by(adm_t.c.time, adm_t.c.id))]
-    bd.periods, bd.info = build_periods(alarm_rows(engine, [bed.id]))
-    bd.notes = notes(engine, [bed.id])
-    bd.commands = commands(engine, [bed.id])
-    return bd
-
-
-def _median_gap(ts: list[float]) -> float:
-    if len(ts) < 2:
-        return 0.0
-    return statistics.median(b - a for a, b in zip(ts, ts[1:]))
-
-
-def limit_lines(cfg: Config, admissions: list[dict[str, Any]], params: tuple[str, ...],
-                t0: float, t1: float) -> list[LimitLine]:
-    """The limits in effect over [t0, t1]: the configuration's, with low/high replaced by the
-    admission in effect (a later admission replaces the earlier; a discharge resets)."""
-    if not cfg.rules.enabled:
-        return []
-    cuts = sorted({t0, t1, *[float(a["time"]) for a in admissions if t0 < a["time"] < t1]})
-    segs = list(zip(cuts, cuts[1:])) or [(t0, t1)]
-
-    def override_at(t: float) -> dict[str, dict[str, float]]:
-        cur: dict[str, dict[str, float]] = {}
-        for a in admissions:
-            if a["time"] > t:
-                break
-            if a["discharged"]:
-                cur = {}
-                continue
-            try:
-                cur = json.loads(a["limits"] or "{}")
-            except ValueError:
-                cur = {}
-        return cur
-
-    out = []
-    for p in params:
-        rule = cfg.rules.limits.get(p)
-        for side in ("low", "high"):
-            steps: list[tuple[float, float, float]] = []
-            overridden = False
-            for a, b in segs:
-                ov = override_at(a).get(p, {})
-                thr = ov.get(side, getattr(rule, side) if rule is not None else None)
-                if side in ov:
-                    overridden = True
-                if thr is None:
-                    continue
-                if steps and steps[-1][2] == thr and steps[-1][1] == a:
-                    steps[-1] = (steps[-1][0], b, thr)
-                else:
-                    steps.append((a, b, float(thr)))
-            if steps:
-                out.append(LimitLine(f"{p} {side}", side, steps,
-                                     "admission override" if overridden else "configuration"))
-    return out
-
-
-def ref_lines(cfg: Config, params: tuple[str, ...]) -> list[RefLine]:
-    """Level thresholds of the enabled pattern rules on these parameters (e.g. SI >= 0.9)."""
-    if not cfg.rules.enabled:
-        return []
-    out: list[RefLine] = []
-    for rid, pat in cfg.rules.patterns.items():
-        if not pat.enabled:
-            continue
-        terms = list(pat.terms) + [t for tier in pat.tiers for t in tier.terms]
-        for term in terms:
-            ps = [term.param] if isinstance(term.param, str) else list(term.param)
-            if not ps or ps[0] not in params:
-                continue
-            if term.at_least is not None:
-                out.append(RefLine(f"{rid} \u2265 {term.at_least:g}", term.at_least))
-            if term.below is not None:
-                out.append(RefLine(f"{rid} < {term.below:g}", term.below))
-    seen, uniq = set(), []
-    for r in out:
-        if (r.label, r.value) not in seen:
-            seen.add((r.label, r.value))
-            uniq.append(r)
-    return uniq
-
-
-def panel_data(spec: PanelSpec, bd: BedData, cfg: Config, t0: float, t1: float) -> PanelData:
-    pd = PanelData(spec.key, spec.title, spec.unit)
-    for s in spec.series:
-        if s.source == "obs":
-            rows = bd.obs.get(s.param, [])
-            valid = [(t, v) for t, v, st in rows if st == "valid"]
-            pd.invalid += [(t, v, st) for t, v, st in rows if st != "valid"]
-            gap = _median_gap([t for t, _ in valid])
-            style = "points" if gap >= 60 else "line"     # cuff, thermodilution
-            gap_s = max(30.0, 3 * gap)
-        else:
-            valid = [(t, v) for t, v, _u, _i in bd.derived.get(s.param, [])]
-            style, gap_s = "line", max(180.0, 2.5 * cfg.store.derived_every_s)
-        if not valid:
-            continue
-        pd.series.append(Series(s.label, [t for t, _ in valid], [v for _, v in valid],
-                                style=style, ink=s.ink, width=s.width, dash=s.dash,
-                                gap_s=gap_s, steps=s.source == "derived"))
-    pd.limits = limit_lines(cfg, bd.admissions, spec.limit_params, t0, t1)
-    pd.refs = ref_lines(cfg, spec.limit_params)
-    if spec.key == "output":
-        pd.fluid = [e for e in bd.info if e.rule == "fluid_challenge" and e.transition == "result"]
-    return pd
-
-
-# ----------------------------------------------------------------------------- HTML
 
 CSS = """
 body { font-family: "DejaVu Sans", Arial, Helvetica, sans-serif; margin: 1.2em 2em;
@@ -344,24 +122,21 @@ thermodilution technique). They are stored when they first appear, when they mov
 than the store's deadband (5 % by default) and at least once a minute, so they are drawn as
 steps. A value derived while a line was flushed or zeroed is stored like any other: read it
 next to the notes.</li>
-<li>Limits drawn are those of the configuration given to the report (and admission overrides
-stored for the bed); the alarms are those stored when the data were processed, which may have
-used another configuration.</li>
+<li>Limits drawn are those of the configuration stored with the data when it was processed
+(and admission overrides stored for the bed), the same the stored alarms were computed with.
+A database written before configurations were stored has none: its limits are then those of
+the configuration given to the report, which may differ (the page says so).</li>
 </ul>
 """
 
 
-def bed_page(engine, cfg: Config, bed: BedInfo, t_from: float | None, t_to: float | None,
-             *, png: bool = False, db_label: str = "", back: str | None = None
+def bed_page(bd: BedData, lim: LimitsSource, t0: float, t1: float, end: float, *,
+             png: bool = False, db_label: str = "", back: str | None = None
              ) -> tuple[str, dict[str, plots.Figures]]:
-    if bed.start is None or bed.end is None:
-        raise ReportError(f"bed {bed.key} has no observations in the database")
-    t0 = bed.start if t_from is None else t_from
-    t1 = bed.end if t_to is None else t_to
-    if t1 <= t0:
-        t1 = t0 + 60.0
-    bd = load_bed(engine, bed, t0, t1)
-    end = max(bed.end, t1) if t_to is None else t1
+    """A bed's page over [t0, t1] (``end``: where open alarms stop) from its loaded rows and
+    the configuration its limits are drawn from."""
+    bed = bd.bed
+    cfg = lim.config
     shown = [p for p in bd.periods if p.start <= t1 and p.end_or(end) >= t0]
     notes_in = [n for n in bd.notes if t0 <= n["time"] <= t1]
     figs: dict[str, plots.Figures] = {}
@@ -475,6 +250,14 @@ def bed_page(engine, cfg: Config, bed: BedInfo, t_from: float | None, t_to: floa
 
     # limits drawn
     parts.append('<h2 id="limits">Limits drawn</h2>')
+    if lim.stored:
+        parts.append('<p class="small" id="limits-source">From the configuration stored with '
+                     f"the data (sha256 <code>{lim.sha256[:12]}</code>; "
+                     "<code>hemostream query configs</code> lists them), with the admission "
+                     "overrides stored for the bed.</p>")
+    else:
+        parts.append(f'<p class="small" id="limits-source">Note: {escape(lim.note)} '
+                     f"(sha256 <code>{lim.sha256[:12]}</code>).</p>")
     lim_rows = []
     for spec in PANELS:
         for lim in limit_lines(cfg, bd.admissions, spec.limit_params, t0, t1):
@@ -544,82 +327,3 @@ def unit_page(beds: list[BedInfo], counts: dict[int, dict[str, Any]], links: dic
                  "suspected artifacts) separately. Each bed's page shows the time line.</p>")
     parts.append(f'<p class="small">Written by hemostream report. {escape(CAUTION)}</p>')
     return _page(f"hemostream review: unit {unit}", "\n".join(parts))
-
-
-def _bed_counts(engine, bed: BedInfo, t0: float | None, t1: float | None) -> dict[str, Any]:
-    periods, info = build_periods(alarm_rows(engine, [bed.id]))
-    a = bed.start if t0 is None else t0
-    b = bed.end if t1 is None else t1
-    c: dict[str, Any] = {"high": 0, "medium": 0, "low": 0, "technical": 0, "hours": 0.0,
-                         "t0": a, "span": (b - a) if a is not None and b is not None else 0}
-    if a is None or b is None:
-        c.update(notes=0, onsets=0, fluid=0)
-        return c
-    end = bed.end or b
-    for p in periods:
-        if p.start > b or p.end_or(end) < a:
-            continue
-        if p.category == "technical":
-            c["technical"] += 1
-        else:
-            c[p.peak_priority] += 1
-        c["hours"] += (min(p.end_or(end), b) - max(p.start, a)) / 3600
-    ns = [n for n in notes(engine, [bed.id]) if a <= n["time"] <= b]
-    c["notes"] = len(ns)
-    c["onsets"] = sum(1 for n in ns if n["kind"] == "deterioration_onset")
-    c["fluid"] = sum(1 for e in info if e.rule == "fluid_challenge"
-                     and e.transition == "result" and a <= e.time <= b)
-    return c
-
-
-def _safe(name: str) -> str:
-    return "".join(ch if ch.isalnum() or ch in "-_" else "_" for ch in name)
-
-
-def write_report(engine, cfg: Config, *, out: str | Path, bed: str | None = None,
-                 unit: str | None = None, t_from: float | None = None,
-                 t_to: float | None = None, png: bool = False,
-                 db_label: str = "") -> list[str]:
-    """Write the page(s); return the paths written (HTML first, then PNGs)."""
-    out = Path(out)
-    beds = load_beds(engine)
-    written: list[str] = []
-
-    def write_bed(b: BedInfo, path: Path, back: str | None) -> None:
-        html, figs = bed_page(engine, cfg, b, t_from, t_to, png=png, db_label=db_label,
-                              back=back)
-        path.write_text(html, encoding="utf-8")
-        written.append(str(path))
-        if png:
-            for key, f in figs.items():
-                p = path.with_name(f"{path.stem}-{key}.png")
-                p.write_bytes(f.png or b"")
-                written.append(str(p))
-
-    out.parent.mkdir(parents=True, exist_ok=True)
-    if bed is not None:
-        found = find_beds(beds, bed)
-        if not found:
-            have = ", ".join(b.key for b in beds.values()) or "none"
-            raise ReportError(f"no bed {bed!r} in the database (beds: {have})")
-        if len(found) > 1:
-            raise ReportError(f"bed {bed!r} is in several units; give UNIT/BED "
-                              f"({', '.join(b.key for b in found)})")
-        write_bed(found[0], out, None)
-        return written
-    unit_beds = [b for b in beds.values() if b.unit == unit]
-    if not unit_beds:
-        units = sorted({b.unit for b in beds.values()})
-        raise ReportError(f"no unit {unit!r} in the database (units: "
-                          f"{', '.join(units) or 'none'})")
-    links = {b.id: f"{out.stem}-{_safe(b.bed)}.html" for b in unit_beds
-             if b.start is not None}
-    counts = {b.id: _bed_counts(engine, b, t_from, t_to) for b in unit_beds}
-    out.write_text(unit_page(unit_beds, counts, links, unit, db_label, t_from, t_to),
-                   encoding="utf-8")
-    written.append(str(out))
-    for b in unit_beds:
-        if b.start is None:
-            continue
-        write_bed(b, out.with_name(links[b.id]), out.name)
-    return written

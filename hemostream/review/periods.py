@@ -1,5 +1,4 @@
-"""Stored rows turned into what a review needs: beds with their observed span, alarm periods,
-information events, notes and commands.
+"""Alarm periods from stored alarm events, and the bed's alarm state over time (pure).
 
 An alarm is active from its ``raised`` transition until its ``cleared`` one (docs/rules.md,
 "The alarm lifecycle"); in between its priority may rise (``updated`` with a stronger tier,
@@ -14,33 +13,9 @@ import json
 from dataclasses import dataclass, field
 from typing import Any, Iterable
 
-from sqlalchemy import func, select
-from sqlalchemy.engine import Engine
-
-from ..store import TABLES
-
 PRIORITIES = ("high", "medium", "low")
 RANK = {"none": 0, "info": 0, "low": 1, "medium": 2, "high": 3}
 ALARM_CATEGORIES = ("physiological", "technical")
-
-
-@dataclass
-class BedInfo:
-    id: int
-    unit: str
-    bed: str
-    start: float | None = None      # first and last measurement time of its obs messages
-    end: float | None = None
-
-    @property
-    def key(self) -> str:
-        return f"{self.unit}/{self.bed}"
-
-    @property
-    def span_s(self) -> float:
-        if self.start is None or self.end is None:
-            return 0.0
-        return max(0.0, self.end - self.start)
 
 
 @dataclass(eq=False)
@@ -132,37 +107,6 @@ def _details(text: str | None) -> dict[str, Any]:
     return d if isinstance(d, dict) else {"value": d}
 
 
-def load_beds(engine: Engine) -> dict[int, BedInfo]:
-    """Every bed, with the span of measurement times of its observation messages."""
-    beds_t, msgs = TABLES["beds"], TABLES["messages"]
-    with engine.connect() as conn:
-        beds = {r.id: BedInfo(r.id, r.unit, r.bed)
-                for r in conn.execute(select(beds_t).order_by(beds_t.c.unit, beds_t.c.bed))}
-        for r in conn.execute(select(msgs.c.bed_id, func.min(msgs.c.time), func.max(msgs.c.time))
-                              .where(msgs.c.kind == "obs").group_by(msgs.c.bed_id)):
-            b = beds.get(r[0])
-            if b is not None:
-                b.start, b.end = float(r[1]), float(r[2])
-    return beds
-
-
-def find_beds(beds: dict[int, BedInfo], spec: str) -> list[BedInfo]:
-    """Beds matching ``UNIT/BED`` or ``BED`` (all units)."""
-    if "/" in spec:
-        u, b = spec.split("/", 1)
-        return [x for x in beds.values() if x.unit == u and x.bed == b]
-    return [x for x in beds.values() if x.bed == spec]
-
-
-def alarm_rows(engine: Engine, bed_ids: Iterable[int] | None = None) -> list[Any]:
-    t = TABLES["alarm_events"]
-    stmt = select(t).order_by(t.c.id)
-    if bed_ids is not None:
-        stmt = stmt.where(t.c.bed_id.in_(list(bed_ids)))
-    with engine.connect() as conn:
-        return list(conn.execute(stmt))
-
-
 def build_periods(rows: Iterable[Any]) -> tuple[list[AlarmPeriod], list[InfoEvent]]:
     """Alarm periods and information events from alarm_events rows (in stored order).
 
@@ -218,24 +162,6 @@ def build_periods(rows: Iterable[Any]) -> tuple[list[AlarmPeriod], list[InfoEven
             p.clear_reason = _details(m["details"]).get("reason")
             del open_[aid]
     return periods, info
-
-
-def notes(engine: Engine, bed_ids: Iterable[int] | None = None) -> list[dict[str, Any]]:
-    t = TABLES["notes"]
-    stmt = select(t).order_by(t.c.time, t.c.id)
-    if bed_ids is not None:
-        stmt = stmt.where(t.c.bed_id.in_(list(bed_ids)))
-    with engine.connect() as conn:
-        return [dict(r._mapping) for r in conn.execute(stmt)]
-
-
-def commands(engine: Engine, bed_ids: Iterable[int] | None = None) -> list[dict[str, Any]]:
-    t = TABLES["commands"]
-    stmt = select(t).order_by(t.c.time, t.c.id)
-    if bed_ids is not None:
-        stmt = stmt.where(t.c.bed_id.in_(list(bed_ids)))
-    with engine.connect() as conn:
-        return [dict(r._mapping) for r in conn.execute(stmt)]
 
 
 def state_segments(periods: Iterable[AlarmPeriod], start: float, end: float

@@ -1,0 +1,80 @@
+"""Times and events in words, as the pages and figures show them."""
+
+from __future__ import annotations
+
+from datetime import datetime, timezone
+from typing import Any
+
+from ..core.processor import epoch
+from .periods import AlarmPeriod, InfoEvent
+
+
+def parse_time(text: str, option: str = "time") -> float:
+    try:
+        t = datetime.fromisoformat(text.replace("Z", "+00:00") if text.endswith("Z") else text)
+    except ValueError:
+        raise ValueError(f"{option} {text!r}: expected an RFC 3339 time such as "
+                         "2026-12-01T08:00:00Z") from None
+    if t.tzinfo is None:
+        raise ValueError(f"{option} {text!r}: give a UTC offset, e.g. 2026-12-01T08:00:00Z")
+    return epoch(t)
+
+
+def hhmmss(t: float) -> str:
+    return datetime.fromtimestamp(t, timezone.utc).strftime("%H:%M:%S")
+
+
+def when(t: float) -> str:
+    return datetime.fromtimestamp(t, timezone.utc).strftime("%Y-%m-%d %H:%M:%SZ")
+
+
+def span_text(s: float) -> str:
+    s = int(round(s))
+    if s < 60:
+        return f"{s} s"
+    if s < 3600:
+        return f"{s // 60} min {s % 60:02d} s"
+    return f"{s // 3600} h {s % 3600 // 60:02d} min"
+
+
+def alarm_hover(p: AlarmPeriod, end: float, pri: str | None = None) -> str:
+    seg = p.end_or(end)
+    parts = [f"{p.rule} ({pri or p.peak_priority} priority, {p.category})",
+             f"{when(p.start)} to {when(seg) if p.end is not None else 'still active at ' + when(seg)}"
+             f" ({span_text(seg - p.start)})"]
+    if p.message:
+        parts.append(p.message)
+    for t, by in p.acks:
+        parts.append(f"acknowledged {hhmmss(t)}" + (f" by {by}" if by else ""))
+    if p.escalated:
+        parts.append("escalated to high priority")
+    if p.clear_reason:
+        parts.append(f"cleared: {p.clear_reason}")
+    return "\n".join(parts)
+
+
+def note_hover(n: dict[str, Any]) -> str:
+    parts = [f"{n['kind']} at {when(n['time'])}"]
+    if n.get("param"):
+        parts.append(f"channel {n['param']}")
+    if n.get("volume_ml") is not None:
+        parts.append(f"{n['volume_ml']:g} mL"
+                     + (f" over {n['over_min']:g} min" if n.get("over_min") is not None else ""))
+    if n.get("duration_s") is not None:
+        parts.append(f"lasting {n['duration_s']:g} s")
+    if n.get("text"):
+        parts.append(n["text"])
+    if n.get("by"):
+        parts.append(f"by {n['by']}")
+    return "\n".join(parts)
+
+
+def fluid_text(e: InfoEvent) -> str:
+    d = e.details
+    out = d.get("outcome", "result")
+    if out in ("responsive", "not_responsive"):
+        s = (f"{out.replace('_', ' ')}: {d.get('param')} {d.get('change_pct', 0):+.0f} %")
+        if d.get("cvp_change") is not None:
+            s += f", CVP {d['cvp_change']:+.1f}"
+        return s
+    return f"not evaluable: {d.get('reason', '')}"

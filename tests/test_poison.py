@@ -1,0 +1,277 @@
+"""No single message may stop the unit: bad input sent to a running ``hemostream run`` on a real
+Mosquitto, on SQLite and on PostgreSQL.
+
+After every case the service is still up, the next valid message of another bed is stored
+promptly, the bad one is kept as a reject with a reason (or, for one bad observation, only
+that observation), and nothing is lost. The invented unit is SDU9 (beds bed-01..bed-03).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import subprocess
+import time
+import uuid
+from dataclasses import dataclass, field
+
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+from sqlalchemy import create_engine, text
+
+from live_fixtures import (UNIT, broker, iso, run_cli_process, wait_until,  # noqa: F401
+                           write_toml)
+
+pytestmark = [pytest.mark.broker]
+
+PG = os.environ.get("HEMOSTREAM_TEST_PG", "postgresql+psycopg://127.0.0.1:5432/test")
+PATIENT = "Ingrid Vastergaard-Nolde"          # an invented name that must never reach a log
+NEXT_OK_S = 5.0      # the next valid message is stored within this (flushes every 0.05 s)
+
+
+def raw_publish(url: str, items: list[tuple[str, bytes]], retain: bool = False) -> None:
+    """Publish exact bytes with paho (QoS 1, each acknowledged by the broker)."""
+    import paho.mqtt.client as paho
+    host, port = url.removeprefix("mqtt://").split(":")
+    c = paho.Client(paho.CallbackAPIVersion.VERSION2, protocol=paho.MQTTv5)
+    c.connect(host, int(port))
+    c.loop_start()
+    try:
+        for topic, payload in items:
+            c.publish(topic, payload, qos=1, retain=retain).wait_for_publish(10)
+    finally:
+        c.disconnect()
+        c.loop_stop()
+
+
+def obs(device: str, seq: int, t: float | str, values: list[dict] | None = None) -> dict:
+    return {"v": 1, "device": device, "seq": seq, "time": t if isinstance(t, str) else iso(t),
+            "obs": values or [{"param": "HR", "value": 72, "unit": "/min"},
+                              {"param": "SPO2", "value": 97, "unit": "%"}]}
+
+
+@dataclass
+class RunningService:
+    url: str
+    db_url: str
+    proc: subprocess.Popen
+    log: object
+    conf: object
+    seq: int = 0
+    engine: object = field(default=None)
+
+    def rows(self, sql: str, **params) -> list[tuple]:
+        try:
+            with self.engine.connect() as c:
+                return [tuple(r) for r in c.execute(text(sql), params)]
+        except Exception:           # noqa: BLE001 - tables not there yet
+            return []
+
+    def alive(self) -> bool:
+        return self.proc.poll() is None
+
+    def next_valid_is_stored(self) -> None:
+        """A valid message of another bed (bed-03) is stored promptly."""
+        self.seq += 1
+        payload = obs("gw-sdu9-bed-03", self.seq, time.time())
+        raw_publish(self.url, [(f"hemo/{UNIT}/bed-03/obs", json.dumps(payload).encode())])
+        wait_until(lambda: self.rows("SELECT 1 FROM messages WHERE device = 'gw-sdu9-bed-03' "
+                                     "AND seq = :s", s=self.seq), NEXT_OK_S,
+                   f"bed-03 seq {self.seq} stored")
+
+    def rejects(self, like: str) -> list[tuple]:
+        return self.rows("SELECT category, reason FROM rejected WHERE reason LIKE :p",
+                         p=f"%{like}%")
+
+
+def _start(url: str, db_url: str, tmp_path, name: str) -> RunningService:
+    conf = write_toml(tmp_path / f"{name}.toml", url, db_url, f"hs-poison-{name}")
+    log = tmp_path / f"{name}.log"
+    proc = run_cli_process(["run", "--config", str(conf)], log_path=log)
+    svc = RunningService(url, db_url, proc, log, conf, engine=create_engine(db_url))
+    wait_until(lambda: svc.rows("SELECT count(*) FROM messages") != [] or not svc.alive(), 30,
+               "the service created its tables")
+    assert svc.alive(), log.read_text()
+    # until it has subscribed, what is published is not kept for it: knock until it answers
+    deadline = time.monotonic() + 30
+    while True:
+        try:
+            svc.next_valid_is_stored()
+            return svc
+        except AssertionError:
+            if time.monotonic() > deadline or not svc.alive():
+                raise
+
+
+def _stop(svc: RunningService) -> str:
+    if svc.alive():
+        svc.proc.send_signal(signal.SIGTERM)
+        svc.proc.wait(30)
+    svc.engine.dispose()
+    return svc.log.read_text()
+
+
+@pytest.fixture(params=["sqlite", "postgresql"], scope="module")
+def service(request, broker, tmp_path_factory):  # noqa: F811
+    tmp = tmp_path_factory.mktemp(f"poison-{request.param}")
+    schema = None
+    if request.param == "sqlite":
+        db_url = f"sqlite:///{tmp / 'poison.db'}"
+    else:
+        schema = f"hs_poison_{uuid.uuid4().hex[:8]}"
+        admin = create_engine(PG)
+        with admin.begin() as c:
+            c.execute(text(f"CREATE SCHEMA {schema}"))
+        admin.dispose()
+        db_url = f"{PG}?options=-csearch_path%3D{schema}"
+    svc = _start(broker.url(), db_url, tmp, request.param)
+    yield svc
+    log = _stop(svc)
+    if schema:
+        admin = create_engine(PG)
+        with admin.begin() as c:
+            c.execute(text(f"DROP SCHEMA {schema} CASCADE"))
+        admin.dispose()
+    assert PATIENT not in log          # never payload content in the log at the default level
+
+
+T = f"hemo/{UNIT}/bed-01"
+NOW = time.time()
+
+# (case id, topic, payload, text expected in the reject's reason)
+WHOLE_MESSAGE_CASES = [
+    ("seq_over_64_bits", f"{T}/obs", obs("gw-sdu9-bed-01", 18446744073709551616, NOW), "seq"),
+    ("seq_over_63_bits", f"{T}/obs", obs("gw-sdu9-bed-01", 2 ** 63, NOW), "seq"),
+    ("year_1_with_offset", f"{T}/obs",
+     obs("gw-sdu9-bed-01", 5, "0001-01-01T00:00:00+01:00"), "time"),
+    ("year_9999_with_negative_offset", f"{T}/obs",
+     obs("gw-sdu9-bed-01", 6, "9999-12-31T23:59:59-01:00"), "time"),
+    ("time_in_1900", f"{T}/obs", obs("gw-sdu9-bed-01", 7, "1900-01-01T00:00:00Z"), "time"),
+    ("note_text_with_nul", f"{T}/note",
+     {"v": 1, "time": iso(NOW), "kind": "free_text", "text": f"{PATIENT}\u0000 drowsy"},
+     "text"),
+    ("note_param_too_long", f"{T}/note",
+     {"v": 1, "time": iso(NOW), "kind": "line_flush", "param": "ABP_" + "X" * 300}, "param"),
+    ("note_by_with_nul", f"{T}/note",
+     {"v": 1, "time": iso(NOW), "kind": "free_text", "text": "ok", "by": "RN\u0000A"}, "by"),
+    ("admit_limit_key_too_long", f"{T}/admit",
+     {"v": 1, "time": iso(NOW), "limits": {"H" * 300: {"low": 1}}}, "limits"),
+    ("obs_time_with_nul_device", f"{T}/obs",
+     obs("gw-\u0000-bed-01", 8, NOW), "device"),
+    ("not_json_at_all", f"{T}/obs", b"\xff\xfe\x00garbage", ""),
+    ("deeply_nested", f"{T}/obs", "[" * 100000 + "]" * 100000, ""),
+]
+
+
+def _bytes(payload) -> bytes:
+    if isinstance(payload, bytes):
+        return payload
+    if isinstance(payload, str):
+        return payload.encode()
+    return json.dumps(payload).encode()
+
+
+@pytest.mark.parametrize("case,topic,payload,reason",
+                         WHOLE_MESSAGE_CASES, ids=[c[0] for c in WHOLE_MESSAGE_CASES])
+def test_a_bad_message_is_a_reject_and_the_unit_goes_on(service, case, topic, payload, reason):
+    before = service.rows("SELECT count(*) FROM rejected")[0][0]
+    raw_publish(service.url, [(topic, _bytes(payload))])
+    service.next_valid_is_stored()
+    assert service.alive(), service.log.read_text()[-3000:]
+    got = service.rows("SELECT category, reason FROM rejected")[before:]
+    assert got, f"{case}: no reject stored"
+    if reason:
+        assert any(reason in r for _, r in got), got
+
+
+@pytest.mark.parametrize("bad", [{"param": "SPO2", "value": "97", "unit": "%"},
+                                 {"param": "SPO2", "value": 97, "unit": "%", "status": "ok"}],
+                         ids=["value_as_text", "unknown_status"])
+def test_one_bad_observation_rejects_only_that_observation(service, bad):
+    service.seq += 1
+    seq = 10_000 + service.seq
+    payload = obs("gw-sdu9-bed-02", seq, time.time(), [
+        {"param": "HR", "value": 88, "unit": "/min"}, bad,
+        {"param": "CVP", "value": 9, "unit": "cm[H2O]"}])
+    raw_publish(service.url, [(f"hemo/{UNIT}/bed-02/obs", _bytes(payload))])
+    wait_until(lambda: service.rows("SELECT id FROM messages WHERE device = 'gw-sdu9-bed-02' "
+                                    "AND seq = :s", s=seq), NEXT_OK_S, "the message stored")
+    (mid,), = service.rows("SELECT id FROM messages WHERE device = 'gw-sdu9-bed-02' "
+                           "AND seq = :s", s=seq)
+    params = sorted(p for p, in service.rows(
+        "SELECT param FROM observations WHERE message_id = :m", m=mid))
+    assert params == ["CVP", "HR"]
+    rej = service.rows("SELECT obs_index, reason FROM rejected WHERE device = 'gw-sdu9-bed-02' "
+                       "AND seq = :s", s=seq)
+    assert [i for i, _ in rej] == [1], rej
+    assert service.alive()
+
+
+@settings(max_examples=40, deadline=None,
+          suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow])
+@given(body=st.recursive(
+    st.none() | st.booleans() | st.integers(min_value=-2 ** 70, max_value=2 ** 70)
+    | st.floats(allow_nan=False) | st.text(max_size=40),
+    lambda inner: st.lists(inner, max_size=4) | st.dictionaries(st.text(max_size=8), inner,
+                                                                   max_size=4),
+    max_leaves=20),
+    kind=st.sampled_from(["obs", "admit", "note", "cmd"]))
+def test_fuzzed_payloads_never_stop_the_service(service, body, kind):
+    # a valid skeleton with one fuzzed field, or a fuzzed document on its own
+    base = {"obs": obs("gw-sdu9-bed-01", 3, NOW), "admit": {"v": 1, "time": iso(NOW)},
+            "note": {"v": 1, "time": iso(NOW), "kind": "free_text", "text": "x"},
+            "cmd": {"v": 1, "time": iso(NOW), "action": "acknowledge", "alarm": "x",
+                    "by": "RN"}}[kind]
+    payloads = [body] + [dict(base, **{k: body}) for k in base]
+    raw_publish(service.url, [(f"{T}/{kind}", json.dumps(p).encode()) for p in payloads])
+    service.next_valid_is_stored()
+    assert service.alive(), service.log.read_text()[-3000:]
+
+
+# --------------------------------------------------------------------------- one early message
+
+def _tachycardia_recording(path, outlier: bool) -> None:
+    """bed-01 at HR 72 for 20 s, (one message dated 290 s ahead, inside the 300 s skew
+    limit,) then HR 190 for 40 s, every message on time. 190 /min is over the shipped high
+    limit of 140 /min with a 10 s condition delay (configs/rules.toml)."""
+    t0 = 1796112000.0                                   # 2026-12-01T08:00:00Z
+    lines, seq = [], 0
+    def add(t_meas: float, rx: float, hr: float) -> None:
+        nonlocal seq
+        seq += 1
+        lines.append({"rx": iso(rx), "topic": f"hemo/{UNIT}/bed-01/obs",
+                      "payload": obs("gw-sdu9-bed-01", seq, t_meas,
+                                     [{"param": "HR", "value": hr, "unit": "/min"}])})
+    for k in range(20):
+        add(t0 + k, t0 + k + 0.2, 72)
+    if outlier:
+        add(t0 + 20 + 290, t0 + 20.2, 72)
+    for k in range(21, 61):
+        add(t0 + k, t0 + k + 0.2, 190)
+    path.write_text("".join(json.dumps(x) + "\n" for x in lines))
+
+
+def _hr_high_raised_at(db_url: str) -> float | None:
+    e = create_engine(db_url)
+    with e.connect() as c:
+        r = c.execute(text("SELECT min(time) FROM alarm_events WHERE rule = 'HR_high' AND "
+                           "transition = 'raised'")).scalar()
+    e.dispose()
+    return r
+
+
+def test_one_message_dated_ahead_does_not_silence_the_alarms(tmp_path):
+    from hemostream.replay import replay_file
+    raised = {}
+    for outlier in (False, True):
+        rec = tmp_path / f"outlier-{outlier}.jsonl"
+        _tachycardia_recording(rec, outlier)
+        db = f"sqlite:///{tmp_path / f'outlier-{outlier}.db'}"
+        s = replay_file(rec, db)
+        assert s.late == 0, "messages on time after one early message are not late"
+        raised[outlier] = _hr_high_raised_at(db)
+    assert raised[False] is not None
+    assert raised[True] is not None, "HR 190 raised no alarm after one early timestamp"
+    assert raised[True] - raised[False] <= 1.0
