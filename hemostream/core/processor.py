@@ -444,6 +444,10 @@ class Processor:
         self.out.commands.append({
             "message_id": mid, "bed_id": bed.id, "time": t, "rx": rx, "action": msg.action,
             "alarm": msg.alarm, "by": msg.by, "result": result})
+        if self.publish:            # the sender learns what became of it (`hemostream ack`)
+            self.out.publish.append((f"hemo/{bed.unit}/{bed.bed}/alarm", {
+                "v": 1, "command": {"time": iso(t), "action": msg.action, "alarm": msg.alarm,
+                                    "by": msg.by, "result": result}}, False))
 
     def _rule_events(self, events: Iterable[Any]) -> None:
         for ev in events:
