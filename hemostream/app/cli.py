@@ -22,6 +22,8 @@ from pydantic import ValidationError
 from rich.console import Console
 from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
 
+from rich.table import Table
+
 from .. import CAUTION, query
 from ..config import ConfigError, load_config, load_for_command, with_overrides
 from ..core.config import Config
@@ -42,6 +44,9 @@ from .watch import run_watch
 
 try:
     from simulators.cli import add_parser as add_simulate_parser
+    from simulators.scenario import ScenarioError, load_scenario
+
+    from . import validate as cohort
 except ImportError:              # the simulators are a separate, optional package
     add_simulate_parser = None
 
@@ -479,7 +484,7 @@ def _cohort_size(text: str) -> int:
 
 
 def add_validate_parser(sub) -> None:
-    from .validate import SCENARIOS
+    SCENARIOS = cohort.SCENARIOS
     v = sub.add_parser(
         "validate", help="the rules on a cohort of simulated patients: sensitivity, delay, "
         "false alarms",
@@ -503,11 +508,6 @@ def add_validate_parser(sub) -> None:
 
 
 def cmd_validate(args) -> int:
-    from rich.table import Table
-
-    from simulators.scenario import ScenarioError, load_scenario
-
-    from .validate import HEADERS, dump_json, run_cohort, table_rows, write_html
     names = [s.strip() for s in args.scenarios.split(",") if s.strip()]
     for n in names:
         try:
@@ -522,22 +522,22 @@ def cmd_validate(args) -> int:
 
         def step(name: str, done: int, total: int) -> None:
             prog.update(task, completed=done, description=f"simulating and replaying {name}")
-        result = run_cohort(cfg, args.per_scenario, args.seed, names, progress=step)
+        result = cohort.run_cohort(cfg, args.per_scenario, args.seed, names, progress=step)
     out = Console(soft_wrap=True, width=None if Console().is_terminal else 132)
     t = Table(title=f"rules on {args.per_scenario} simulated patients per scenario "
               f"({result['bed_days']:g} bed-days, seed {args.seed})")
-    for h in HEADERS:
+    for h in cohort.HEADERS:
         t.add_column(h, justify="left" if h == "rule" else "right", no_wrap=h == "rule")
-    for row in table_rows(result):
+    for row in cohort.table_rows(result):
         t.add_row(*row)
     out.print(t)
     out.print(f"{CAUTION} Figures from simulated patients (docs/simulators.md), not a "
               "clinical validation.", highlight=False)
     try:
         if args.json:
-            dump_json(result, args.json)
+            cohort.dump_json(result, args.json)
         if args.html:
-            write_html(result, args.html, CAUTION)
+            cohort.write_html(result, args.html, CAUTION)
     except OSError as e:
         err.print(f"[red]error:[/] cannot write the output: {e.strerror or e}")
         return 1

@@ -25,6 +25,9 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable, Iterable
 
+from simulators.scenario import load_scenario
+from simulators.ward import generate, write_recording
+
 from ..core.config import Config
 from ..replay import replay_file
 from ..review.periods import build_periods
@@ -129,9 +132,6 @@ def run_cohort(config: Config, per_scenario: int = 30, seed: int = 0,
                scenarios: Iterable[str] = SCENARIOS, duration_s: float | None = None,
                progress: Callable[[str, int, int], None] | None = None) -> dict[str, Any]:
     """Simulate, replay and evaluate; the result as a JSON-able dict."""
-    from simulators.scenario import load_scenario
-    from simulators.ward import generate, write_recording
-
     scenarios = list(scenarios)
     figures: dict[str, RuleFigures] = {}
     quiet_days: list[tuple[frozenset[str], float]] = []
