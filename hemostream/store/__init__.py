@@ -19,190 +19,20 @@ import time as _time
 from dataclasses import dataclass, field
 from typing import Any, Callable, Iterable
 
-from sqlalchemy import (BigInteger, Boolean, Float, ForeignKey, Index, Integer, LargeBinary,
-                        String, Text, UniqueConstraint, create_engine, event, func, insert,
-                        select)
+import weakref
+
+from sqlalchemy import create_engine, event, func, insert, select
 from sqlalchemy import exc as sa_exc
 from sqlalchemy.engine import Engine
-from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
 
-from .core.processor import OBSERVATION_COLUMNS, obs_identity, raw_digest
-from .core.redact import redact
+from ..core.processor import OBSERVATION_COLUMNS, obs_identity, raw_digest
+from ..core.redact import redact
+from .chunks import Chunker, iter_derived, iter_observations  # noqa: F401  (re-exported)
+from .schema import (CHUNKED, INSERT_ORDER, TABLES, AlarmEvent, Admission, Base,  # noqa: F401
+                     Bed, Command, ConfigSnapshot, Message, MinuteStat, Note, ObsChunk,
+                     Rejected)
 
 log = logging.getLogger(__name__)
-
-
-class Base(DeclarativeBase):
-    pass
-
-
-#: 64-bit ids on PostgreSQL; on SQLite only INTEGER PRIMARY KEY is the auto-incrementing rowid
-BigId = BigInteger().with_variant(Integer, "sqlite")
-
-
-class Bed(Base):
-    __tablename__ = "beds"
-    id: Mapped[int] = mapped_column(Integer, primary_key=True, autoincrement=False)
-    unit: Mapped[str] = mapped_column(String(32))
-    bed: Mapped[str] = mapped_column(String(32))
-    __table_args__ = (UniqueConstraint("unit", "bed"),)
-
-
-class Message(Base):
-    """Every accepted message (identity for duplicate detection, audit of arrival)."""
-
-    __tablename__ = "messages"
-    id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=False)
-    bed_id: Mapped[int] = mapped_column(ForeignKey("beds.id"))
-    rx: Mapped[float] = mapped_column(Float(53))
-    topic: Mapped[str] = mapped_column(String(512))
-    kind: Mapped[str] = mapped_column(String(8))
-    device: Mapped[str | None] = mapped_column(String(64))
-    seq: Mapped[int | None] = mapped_column(BigInteger)
-    time: Mapped[float] = mapped_column(Float(53))
-    late: Mapped[bool] = mapped_column(Boolean)
-    n_obs: Mapped[int] = mapped_column(Integer)
-    #: content digest of admit/note/cmd messages (their identity for duplicate detection)
-    digest: Mapped[str | None] = mapped_column(String(16))
-    __table_args__ = (Index("ix_messages_device", "device", "id"),)
-
-
-class Observation(Base):
-    """Every received observation: canonical value and unit, and the value as received."""
-
-    __tablename__ = "observations"
-    id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
-    message_id: Mapped[int] = mapped_column(ForeignKey("messages.id"))
-    bed_id: Mapped[int] = mapped_column(ForeignKey("beds.id"))
-    param: Mapped[str] = mapped_column(String(16))
-    time: Mapped[float] = mapped_column(Float(53))
-    value: Mapped[float] = mapped_column(Float(53))
-    unit: Mapped[str] = mapped_column(String(16))
-    raw_value: Mapped[float] = mapped_column(Float(53))
-    raw_unit: Mapped[str] = mapped_column(String(16))
-    status: Mapped[str] = mapped_column(String(16))
-    late: Mapped[bool] = mapped_column(Boolean)
-    __table_args__ = (Index("ix_observations_bed_param_time", "bed_id", "param", "time"),)
-
-
-class DerivedValue(Base):
-    """A derived value with the inputs (param, measurement time) it was computed from."""
-
-    __tablename__ = "derived"
-    id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
-    bed_id: Mapped[int] = mapped_column(ForeignKey("beds.id"))
-    param: Mapped[str] = mapped_column(String(16))
-    time: Mapped[float] = mapped_column(Float(53))
-    value: Mapped[float] = mapped_column(Float(53))
-    unit: Mapped[str] = mapped_column(String(16))
-    inputs: Mapped[str] = mapped_column(Text)
-    __table_args__ = (Index("ix_derived_bed_param_time", "bed_id", "param", "time"),)
-
-
-class Admission(Base):
-    __tablename__ = "admissions"
-    id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
-    message_id: Mapped[int] = mapped_column(ForeignKey("messages.id"))
-    bed_id: Mapped[int] = mapped_column(ForeignKey("beds.id"))
-    time: Mapped[float] = mapped_column(Float(53))
-    height_cm: Mapped[float | None] = mapped_column(Float)
-    weight_kg: Mapped[float | None] = mapped_column(Float)
-    bsa_m2: Mapped[float | None] = mapped_column(Float)
-    bsa_formula: Mapped[str | None] = mapped_column(String(16))
-    limits: Mapped[str] = mapped_column(Text)
-    discharged: Mapped[bool] = mapped_column(Boolean)
-
-
-class Note(Base):
-    __tablename__ = "notes"
-    id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
-    message_id: Mapped[int] = mapped_column(ForeignKey("messages.id"))
-    bed_id: Mapped[int] = mapped_column(ForeignKey("beds.id"))
-    time: Mapped[float] = mapped_column(Float(53))
-    kind: Mapped[str] = mapped_column(String(32))
-    volume_ml: Mapped[float | None] = mapped_column(Float)
-    over_min: Mapped[float | None] = mapped_column(Float)
-    param: Mapped[str | None] = mapped_column(String(16))
-    by: Mapped[str | None] = mapped_column(String(64))
-    text: Mapped[str | None] = mapped_column(Text)
-    duration_s: Mapped[float | None] = mapped_column(Float)
-
-
-class Command(Base):
-    """Acknowledge / audio-pause commands as received, with what became of them (audit)."""
-
-    __tablename__ = "commands"
-    id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
-    message_id: Mapped[int] = mapped_column(ForeignKey("messages.id"))
-    bed_id: Mapped[int] = mapped_column(ForeignKey("beds.id"))
-    time: Mapped[float] = mapped_column(Float(53))
-    rx: Mapped[float] = mapped_column(Float(53))
-    action: Mapped[str] = mapped_column(String(16))
-    alarm: Mapped[str] = mapped_column(String(128))
-    by: Mapped[str] = mapped_column(String(64))
-    result: Mapped[str] = mapped_column(Text)
-
-
-class Rejected(Base):
-    """Input that failed a rule of the wire format: where, when, what and why."""
-
-    __tablename__ = "rejected"
-    id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
-    rx: Mapped[float | None] = mapped_column(Float(53))
-    topic: Mapped[str] = mapped_column(String(512))
-    category: Mapped[str] = mapped_column(String(32))
-    reason: Mapped[str] = mapped_column(Text)
-    obs_index: Mapped[int | None] = mapped_column(Integer)
-    device: Mapped[str | None] = mapped_column(String(64))
-    seq: Mapped[int | None] = mapped_column(BigInteger)
-    raw: Mapped[bytes] = mapped_column(LargeBinary)
-    size: Mapped[int] = mapped_column(Integer)
-
-
-class AlarmEvent(Base):
-    """One alarm lifecycle transition (or rule information such as a fluid-challenge result)."""
-
-    __tablename__ = "alarm_events"
-    id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
-    bed_id: Mapped[int] = mapped_column(ForeignKey("beds.id"))
-    time: Mapped[float] = mapped_column(Float(53))
-    alarm_id: Mapped[str] = mapped_column(String(128))
-    rule: Mapped[str] = mapped_column(String(64))
-    priority: Mapped[str] = mapped_column(String(8))
-    category: Mapped[str] = mapped_column(String(16))
-    transition: Mapped[str] = mapped_column(String(32))
-    value: Mapped[float | None] = mapped_column(Float(53))
-    details: Mapped[str] = mapped_column(Text)
-    by: Mapped[str | None] = mapped_column(String(64))
-    __table_args__ = (Index("ix_alarm_events_bed_time", "bed_id", "time"),)
-
-
-class ConfigSnapshot(Base):
-    """A configuration that came into force (replay or live run start), kept with the data so
-    a review reads the limits that applied rather than those of today's file.
-
-    ``time``: from when it applies (epoch seconds UTC; the newest stored arrival when it was
-    written, 0 for an empty database), ``sha256`` of ``config`` (canonical JSON: sorted keys,
-    no spaces). A configuration equal to the one last in force is not written again."""
-
-    __tablename__ = "config_snapshots"
-    id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
-    time: Mapped[float] = mapped_column(Float(53))
-    sha256: Mapped[str] = mapped_column(String(64))
-    config: Mapped[str] = mapped_column(Text)
-    __table_args__ = (Index("ix_config_snapshots_time", "time"),)
-
-
-TABLES = {
-    "beds": Bed.__table__, "messages": Message.__table__,
-    "observations": Observation.__table__, "derived": DerivedValue.__table__,
-    "admissions": Admission.__table__, "notes": Note.__table__,
-    "commands": Command.__table__, "rejected": Rejected.__table__,
-    "alarm_events": AlarmEvent.__table__, "config_snapshots": ConfigSnapshot.__table__,
-}
-#: insertion order that respects foreign keys
-INSERT_ORDER = ("beds", "messages", "observations", "derived", "admissions", "notes",
-                "commands", "rejected", "alarm_events", "config_snapshots")
 
 
 class StoreError(RuntimeError):
@@ -291,6 +121,22 @@ def _insert_sql(engine: Engine, name: str, cols: tuple[str, ...]) -> tuple[str, 
     return hit
 
 
+_CHUNKERS: "weakref.WeakKeyDictionary[Engine, Chunker]" = weakref.WeakKeyDictionary()
+
+
+def chunker(engine: Engine) -> Chunker:
+    """The engine's :class:`Chunker` (seal thresholds, unsealed segments per bed)."""
+    c = _CHUNKERS.get(engine)
+    if c is None:
+        c = _CHUNKERS[engine] = Chunker()
+    return c
+
+
+def configure_chunks(engine: Engine, messages: int, segments: int) -> None:
+    c = chunker(engine)
+    c.messages, c.segments = messages, segments
+
+
 def write_rows(engine: Engine, rows: dict[str, list[dict]]) -> None:
     """Insert rows of several tables in one transaction (foreign-key order).
 
@@ -301,6 +147,11 @@ def write_rows(engine: Engine, rows: dict[str, list[dict]]) -> None:
     positional = engine.dialect.positional
     with engine.begin() as conn:
         for name in INSERT_ORDER:
+            if name in CHUNKED:
+                if name == "observations" and (rows.get("observations") or rows.get("derived")):
+                    chunker(engine).write(conn, rows.get("observations") or [],
+                                          rows.get("derived") or [])
+                continue
             batch = rows.get(name)
             if not batch:
                 continue
