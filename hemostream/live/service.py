@@ -269,7 +269,7 @@ class Service:
         self.proc = Processor(cfg, rules=self.rules, next_ids=resume.next_ids,
                               known_beds=resume.beds, known_messages=resume.messages,
                               known_retained_rejects=resume.retained_rejects)
-        self.writer = Writer(engine, max_batches=16)
+        self.writer = Writer(engine, max_batches=16, store_cfg=cfg.store)
         self.inq: asyncio.Queue = asyncio.Queue(b.queue_size)
         log.info("hemostream %s: database %s, %d bed(s) and %d recent message identities "
                  "known, subscribing to %s", cfg.instance, _safe_url(self.db_url),

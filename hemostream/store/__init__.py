@@ -27,7 +27,8 @@ from sqlalchemy.engine import Engine
 
 from ..core.processor import OBSERVATION_COLUMNS, obs_identity, raw_digest
 from ..core.redact import redact
-from .chunks import Chunker, iter_derived, iter_observations  # noqa: F401  (re-exported)
+from .chunks import (Chunker, iter_derived, iter_observations,  # noqa: F401  (re-exported)
+                     sealed_messages)
 from .schema import (CHUNKED, INSERT_ORDER, TABLES, AlarmEvent, Admission, Base,  # noqa: F401
                      Bed, Command, ConfigSnapshot, Message, MinuteStat, Note, ObsChunk,
                      Rejected)
@@ -85,22 +86,62 @@ class Resume:
 def load_resume(engine: Engine, recent: int = 200_000) -> Resume:
     """Next ids, known beds, and the identities of the most recent messages (for dedup)."""
     m = Message.__table__
+    ch = ObsChunk.__table__
     with engine.connect() as conn:
-        max_id = conn.execute(select(func.max(m.c.id))).scalar() or 0
+        max_id = max(conn.execute(select(func.max(m.c.id))).scalar() or 0,
+                     conn.execute(select(func.max(ch.c.mid_max))).scalar() or 0)
         beds = [(r.id, r.unit, r.bed) for r in conn.execute(select(Bed.__table__))]
-        rows = conn.execute(
-            select(m.c.kind, m.c.topic, m.c.device, m.c.seq, m.c.time, m.c.digest)
-            .where(m.c.id > max_id - recent).order_by(m.c.id)).all()
+        rows = [r._mapping for r in conn.execute(
+            select(m.c.id, m.c.kind, m.c.topic, m.c.device, m.c.seq, m.c.time, m.c.digest)
+            .where(m.c.id > max_id - recent))]
+        rows += list(sealed_messages(conn, max_id - recent + 1))
+        rows.sort(key=lambda r: r["id"])
         rj = Rejected.__table__
         rejects = conn.execute(
             select(rj.c.topic, rj.c.raw).where(rj.c.size == func.length(rj.c.raw))
             .order_by(rj.c.id.desc()).limit(10_000)).all()
-    known = [(r.device, obs_identity(r.seq, r.time)) if r.kind == "obs"
-             else (r.topic, (r.kind, r.time, r.digest)) for r in rows]
+    known = [(r["device"], obs_identity(r["seq"], r["time"])) if r["kind"] == "obs"
+             else (r["topic"], (r["kind"], r["time"], r["digest"])) for r in rows]
     return Resume(next_ids={"messages": max_id + 1,
                             "beds": max((b[0] for b in beds), default=0) + 1},
                   beds=beds, messages=known,
                   retained_rejects=[(r.topic, raw_digest(r.raw)) for r in rejects])
+
+
+def iter_messages(engine: Engine, kind: str | None = None) -> Iterable[dict[str, Any]]:
+    """Every stored message as a ``messages`` row (dict), those inside sealed chunks too;
+    by id."""
+    m = Message.__table__
+    with engine.connect() as conn:
+        stmt = select(m)
+        if kind:
+            stmt = stmt.where(m.c.kind == kind)
+        rows = [dict(r._mapping) for r in conn.execute(stmt)]
+        if kind in (None, "obs"):
+            rows += list(sealed_messages(conn))
+    rows.sort(key=lambda r: r["id"])
+    return rows
+
+
+def message_count(engine: Engine, kind: str | None = None) -> int:
+    """How many messages are stored (the table's rows and those moved into sealed chunks)."""
+    m, ch = Message.__table__, ObsChunk.__table__
+    with engine.connect() as conn:
+        stmt = select(func.count()).select_from(m)
+        if kind:
+            stmt = stmt.where(m.c.kind == kind)
+        n = conn.execute(stmt).scalar() or 0
+        if kind in (None, "obs"):
+            n += conn.execute(select(func.coalesce(func.sum(ch.c.m_count), 0))).scalar() or 0
+    return int(n)
+
+
+def newest_arrival(conn) -> float | None:
+    m, ch = Message.__table__, ObsChunk.__table__
+    vals = [conn.execute(select(func.max(m.c.rx))).scalar(),
+            conn.execute(select(func.max(ch.c.rx_max))).scalar()]
+    vals = [v for v in vals if v is not None]
+    return max(vals) if vals else None
 
 
 #: tables whose rows the core hands over as tuples, and their column order
@@ -246,8 +287,10 @@ class Writer:
     nothing is acknowledged until it is written.
     """
 
-    def __init__(self, engine: Engine, max_batches: int = 64) -> None:
+    def __init__(self, engine: Engine, max_batches: int = 64, store_cfg: Any = None) -> None:
         self.engine = engine
+        if store_cfg is not None:
+            configure_chunks(engine, store_cfg.chunk_messages, store_cfg.chunk_segments)
         self.q: queue.Queue = queue.Queue(max_batches)
         self.error: BaseException | None = None
         self.batches = 0
@@ -370,6 +413,12 @@ class Writer:
     def close(self) -> None:
         self.q.put(None)
         self._t.join()
+        if self.error is None and not self._closing:
+            try:       # fewer, better-compressed rows for each bed's open segments
+                with self.engine.begin() as conn:
+                    chunker(self.engine).compact_all(conn)
+            except Exception as e:  # noqa: BLE001 - an optimisation only
+                log.warning("could not compact the open chunks: %s", _first_line(e))
         if self.error is not None:
             raise StoreError(f"database writes failed: {_first_line(self.error)}") from None
 
@@ -406,7 +455,7 @@ def record_config(engine: Engine, cfg: Any, time: float | None = None) -> bool:
         if last == digest:
             return False
         if time is None:
-            time = conn.execute(select(func.max(Message.__table__.c.rx))).scalar() or 0.0
+            time = newest_arrival(conn) or 0.0
     write_rows(engine, {"config_snapshots": [
         {"time": float(time), "sha256": digest, "config": text}]})
     return True

@@ -103,10 +103,20 @@ def merge(blocks: Sequence[dict[str, Any]]) -> dict[str, Any]:
 
 def chunk_row(bed_id: int, blk: dict[str, Any], sealed: bool, level: int) -> dict[str, Any]:
     times = [blk[c] for c in ("o_time", "d_time") if c in blk]
-    allt = np.concatenate(times)
+    allt = np.concatenate(times) if times else np.zeros(0)
     m = blk.get("o_mid", np.zeros(0, np.int64))
+    mm = blk.get("m_id")
+    has = mm is not None and len(mm) > 0
+    if has:
+        allt = np.concatenate([allt, blk["m_time"]])
     return {"bed_id": bed_id, "t_min": float(allt.min()), "t_max": float(allt.max()),
             "n_messages": int(len(np.unique(m))), "n_obs": len(m),
+            "m_count": int(len(mm)) if has else 0,
+            "mid_max": int(max(mm.max(), m.max() if len(m) else 0)) if has else (
+                int(m.max()) if len(m) else None),
+            "rx_max": float(blk["m_rx"].max()) if has else None,
+            "msg_t_min": float(blk["m_time"].min()) if has else None,
+            "msg_t_max": float(blk["m_time"].max()) if has else None,
             "n_derived": len(blk.get("d_seq", ())),
             "seq_max": int(blk["d_seq"].max()) if "d_seq" in blk else None,
             "sealed": sealed, "data": codec.encode(blk, level=level, perm=PERM)}
@@ -150,13 +160,35 @@ class Chunker:
             else:
                 st[0] += 1
                 st[1] += r["n_messages"]
-            if st[1] >= self.messages or st[0] >= self.segments:
+            if st[1] >= self.messages:
                 seal(conn, r["bed_id"])
                 st[0] = st[1] = 0
+            elif st[0] >= self.segments:
+                seal(conn, r["bed_id"], final=False)
+                st[0] = 1
+
+    def compact_all(self, conn: Connection) -> int:
+        """Merge every bed's open segments into one (a writer closing): fewer, smaller rows;
+        the messages stay in ``messages`` until the bed's chunk is really sealed."""
+        t = ObsChunk.__table__
+        beds = [r[0] for r in conn.execute(
+            select(t.c.bed_id).where(t.c.sealed.is_(False)).group_by(t.c.bed_id)
+            .having(func.count() > 1))]
+        for b in beds:
+            seal(conn, b, final=False)
+            if b in self.open:
+                self.open[b][0] = 1
+        return len(beds)
 
 
-def seal(conn: Connection, bed_id: int) -> int:
-    """Merge a bed's unsealed segments into one sealed chunk; how many were merged."""
+_M_COLS = ("id", "rx", "topic", "device", "seq", "time", "late", "n_obs")
+
+
+def seal(conn: Connection, bed_id: int, final: bool = True) -> int:
+    """Merge a bed's unsealed segments into one chunk; ``final``: a sealed chunk, which also
+    takes in the bed's observation messages from ``messages``. How many were merged."""
+    from .schema import Message
+
     t = ObsChunk.__table__
     segs = conn.execute(select(t.c.id, t.c.data).where(t.c.bed_id == bed_id,
                                                        t.c.sealed.is_(False))
@@ -164,9 +196,47 @@ def seal(conn: Connection, bed_id: int) -> int:
     if not segs:
         return 0
     blk = merge([decode(s.data) for s in segs])
-    conn.execute(insert(t), [chunk_row(bed_id, blk, True, 9)])
+    mt = Message.__table__
+    ids: list[int] = []
+    if final:
+        msgs = conn.execute(select(*[mt.c[c] for c in _M_COLS]).where(
+            mt.c.bed_id == bed_id, mt.c.kind == "obs").order_by(mt.c.id)).all()
+        if msgs:
+            cols = list(zip(*msgs))
+            ids = list(cols[0])
+            blk.update(m_id=np.array(cols[0], np.int64), m_rx=np.array(cols[1], np.float64),
+                       m_topic=list(cols[2]), m_device=list(cols[3]),
+                       m_seq=np.array(cols[4], np.int64).view(np.int64),
+                       m_time=np.array(cols[5], np.float64),
+                       m_late=np.array([bool(x) for x in cols[6]], bool),
+                       m_nobs=np.array(cols[7], np.int64))
+    conn.execute(insert(t), [chunk_row(bed_id, blk, final, 9 if final else 6)])
     conn.execute(delete(t).where(t.c.id.in_([s.id for s in segs])))
+    for k in range(0, len(ids), 500):
+        conn.execute(delete(mt).where(mt.c.id.in_(ids[k:k + 500])))
     return len(segs)
+
+
+def sealed_messages(conn: Connection, min_mid: int | None = None,
+                    bed_ids: Iterable[int] | None = None) -> Iterator[dict[str, Any]]:
+    """Observation messages kept inside sealed chunks (as ``messages`` rows, kind obs)."""
+    t = ObsChunk.__table__
+    stmt = select(t.c.bed_id, t.c.data).where(t.c.m_count > 0)
+    if min_mid is not None:
+        stmt = stmt.where(t.c.mid_max >= min_mid)
+    if bed_ids is not None:
+        stmt = stmt.where(t.c.bed_id.in_(list(bed_ids)))
+    for c in conn.execute(stmt.order_by(t.c.id)):
+        b = decode(c.data)
+        for mid, rx, topic, dev, seq, tm, late, n in zip(
+                b["m_id"].tolist(), b["m_rx"].tolist(), b["m_topic"], b["m_device"],
+                b["m_seq"].tolist(), b["m_time"].tolist(), b["m_late"].tolist(),
+                b["m_nobs"].tolist()):
+            if min_mid is not None and mid < min_mid:
+                continue
+            yield {"id": mid, "bed_id": c.bed_id, "rx": rx, "topic": topic, "kind": "obs",
+                   "device": dev, "seq": seq, "time": tm, "late": late, "n_obs": n,
+                   "digest": None}
 
 
 # --------------------------------------------------------------------------- reading

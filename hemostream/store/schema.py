@@ -24,7 +24,10 @@ class Bed(Base):
 
 
 class Message(Base):
-    """Every accepted message (identity for duplicate detection, audit of arrival)."""
+    """Every accepted message (identity for duplicate detection, audit of arrival).
+
+    Observation messages stay here until their bed's chunk is sealed; then their rows move
+    into the chunk (``m_*`` columns, value-exact) and are read from there."""
 
     __tablename__ = "messages"
     id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=False)
@@ -39,6 +42,7 @@ class Message(Base):
     n_obs: Mapped[int] = mapped_column(Integer)
     #: content digest of admit/note/cmd messages (their identity for duplicate detection)
     digest: Mapped[str | None] = mapped_column(String(16))
+    __table_args__ = (Index("ix_messages_bed", "bed_id", "id"),)
 
 
 class Admission(Base):
@@ -148,6 +152,12 @@ class ObsChunk(Base):
     t_min: Mapped[float] = mapped_column(Float(53))
     t_max: Mapped[float] = mapped_column(Float(53))
     n_messages: Mapped[int] = mapped_column(Integer)
+    #: obs messages (identity, arrival) moved in from ``messages`` when it was sealed
+    m_count: Mapped[int] = mapped_column(Integer, default=0)
+    mid_max: Mapped[int | None] = mapped_column(BigInteger)
+    rx_max: Mapped[float | None] = mapped_column(Float(53))
+    msg_t_min: Mapped[float | None] = mapped_column(Float(53))
+    msg_t_max: Mapped[float | None] = mapped_column(Float(53))
     n_obs: Mapped[int] = mapped_column(Integer)
     n_derived: Mapped[int] = mapped_column(Integer)
     seq_max: Mapped[int | None] = mapped_column(BigInteger)
