@@ -27,6 +27,7 @@ from sqlalchemy.engine import Engine
 
 from ..core.processor import OBSERVATION_COLUMNS, obs_identity, raw_digest
 from ..core.redact import redact
+from . import versions
 from .chunks import (Chunker, iter_derived, iter_observations,  # noqa: F401  (re-exported)
                      sealed_messages)
 from .schema import (CHUNKED, INSERT_ORDER, TABLES, AlarmEvent, Admission, Base,  # noqa: F401
@@ -40,8 +41,10 @@ class StoreError(RuntimeError):
     pass
 
 
-def open_engine(url: str, *, create: bool = True) -> Engine:
-    """Create an engine for ``url`` (SQLite in WAL mode) and make sure the tables exist."""
+def open_engine(url: str, *, create: bool = True, check: bool = True) -> Engine:
+    """Create an engine for ``url`` (SQLite in WAL mode); an empty database is created at
+    the newest schema revision (``create``), any other must be at it (``check``: else a
+    :class:`StoreError` that names ``hemostream db upgrade``)."""
     kwargs: dict[str, Any] = {}
     if url.startswith("sqlite"):
         kwargs["connect_args"] = {"check_same_thread": False}
@@ -61,11 +64,15 @@ def open_engine(url: str, *, create: bool = True) -> Engine:
             cur.execute("PRAGMA foreign_keys=OFF")
             cur.close()
     try:
-        if create:
-            Base.metadata.create_all(engine)
-        else:
-            with engine.connect():
-                pass
+        with engine.connect() as conn:
+            rev = versions.current(conn)
+        if rev is None and create:
+            versions.create_at_head(engine, Base.metadata)
+        elif check and rev is not None:
+            versions.check(engine, url)
+    except versions.SchemaError as e:
+        engine.dispose()
+        raise StoreError(str(e)) from None
     except Exception as e:
         raise StoreError(redact(f"cannot open database {url!r}: {e.__class__.__name__}: "
                                 f"{str(e).splitlines()[0]}")) from None
