@@ -65,10 +65,9 @@ def _float_col(a: np.ndarray) -> tuple[dict, bytes]:
             scaled = a * s
             if np.max(np.abs(scaled)) >= 2.0 ** 53:
                 break
-            ints = np.rint(scaled)
-            if np.array_equal((ints / s).view(np.int64), bits):
-                with np.errstate(over="ignore"):
-                    return {"e": "fd", "k": k}, _shuffle(_delta(ints.astype(np.int64)))
+            ints = np.rint(scaled).astype(np.int64)
+            if np.array_equal((ints.astype(np.float64) / s).view(np.int64), bits):
+                return {"e": "fd", "k": k}, _shuffle(_delta(ints))
     return {"e": "fb"}, _shuffle(a)
 
 
