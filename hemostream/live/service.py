@@ -498,9 +498,36 @@ class Service:
                            f"acknowledged): {self.writer.error.__class__.__name__}")
                 return
             self.outbox.prune()
+            self._maybe_prune()
             if time.monotonic() >= next_health:
                 next_health += b.health_every_s
                 self.publish_health()
+
+    def _maybe_prune(self) -> None:
+        """Retention ([store.retention]): prune every prune_every_s, first after one
+        interval, on a worker thread (hemostream.store.retention)."""
+        every = self.cfg.store.retention.prune_every_s
+        now = time.monotonic()
+        nxt = getattr(self, "_next_prune", None)
+        if not every or getattr(self, "_pruning", None) is not None and not self._pruning.done():
+            return
+        if nxt is None:
+            self._next_prune = now + every
+            return
+        if now >= nxt:
+            self._next_prune = now + every
+            self._pruning = asyncio.ensure_future(asyncio.to_thread(self._prune_once))
+
+    def _prune_once(self) -> None:
+        from ..store.retention import prune
+        try:
+            rep = prune(self.writer.engine, self.cfg.store.retention, self.clock())
+        except Exception as e:  # noqa: BLE001 - tried again at the next interval
+            log.warning("pruning failed, will try again: %s", e.__class__.__name__)
+            return
+        if rep.removed:
+            log.info("pruned past retention: %s", ", ".join(
+                f"{n} {k}" for k, n in sorted(rep.removed.items())))
 
     def publish_health(self) -> dict:
         h = self.health
