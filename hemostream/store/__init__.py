@@ -499,3 +499,40 @@ def config_in_force(engine: Engine, at: float) -> dict[str, Any] | None:
 def iter_rows(engine: Engine, stmt) -> Iterable[Any]:
     with engine.connect() as conn:
         yield from conn.execute(stmt)
+
+
+# --------------------------------------------------------------------------- flat views
+
+def _engine_of(db: Any) -> tuple[Engine, bool]:
+    if isinstance(db, Engine):
+        return db, False
+    s = str(db)
+    return create_engine(s if "://" in s else f"sqlite:///{s}"), True
+
+
+def observation_rows(db: Any) -> list[dict[str, Any]]:
+    """Every stored observation as the one-row-per-observation table had it (``message_id``,
+    ``bed_id``, ``param``, ``time``, ``value``, ``unit``, ``raw_value``, ``raw_unit``,
+    ``status``, ``late``), by time then arrival. ``db``: an engine, a URL or a SQLite path."""
+    engine, own = _engine_of(db)
+    try:
+        with engine.connect() as conn:
+            return [{"message_id": mid, "bed_id": b, "param": p, "time": t, "value": v,
+                     "unit": u, "raw_value": rv, "raw_unit": ru, "status": st, "late": late}
+                    for t, mid, b, p, v, u, st, rv, ru, late in iter_observations(conn)]
+    finally:
+        if own:
+            engine.dispose()
+
+
+def derived_rows(db: Any) -> list[dict[str, Any]]:
+    """Every stored derived value (``bed_id``, ``param``, ``time``, ``value``, ``unit``,
+    ``inputs`` JSON text), by time then storage order."""
+    engine, own = _engine_of(db)
+    try:
+        with engine.connect() as conn:
+            return [{"bed_id": b, "param": p, "time": t, "value": v, "unit": u, "inputs": i}
+                    for t, _q, b, p, v, u, i in iter_derived(conn)]
+    finally:
+        if own:
+            engine.dispose()
