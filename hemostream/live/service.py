@@ -39,6 +39,7 @@ from ..core.wire import encode, format_epoch, input_filters
 from ..core.wire import status_topic as instance_status_topic
 from ..pipeline import make_rules
 from ..store import StoreError, Writer, load_resume, open_engine, record_config, rows_of
+from ..store.retention import prune as prune_store
 from .health import Health, log_line, status_payload
 from .transport import Incoming, Transport, TransportError
 
@@ -552,9 +553,8 @@ class Service:
             self._pruning = asyncio.ensure_future(asyncio.to_thread(self._prune_once))
 
     def _prune_once(self) -> None:
-        from ..store.retention import prune
         try:
-            rep = prune(self.writer.engine, self.cfg.store.retention, self.clock())
+            rep = prune_store(self.writer.engine, self.cfg.store.retention, self.clock())
         except Exception as e:  # noqa: BLE001 - tried again at the next interval
             log.warning("pruning failed, will try again: %s", e.__class__.__name__)
             return

@@ -24,7 +24,7 @@ from sqlalchemy.engine import Connection
 
 from ..core.outputs import inputs_json
 from . import codec
-from .schema import ObsChunk
+from .schema import TABLES
 
 OBS_COLS = ("o_mid", "o_param", "o_time", "o_value", "o_unit", "o_conv", "o_raw",
             "o_raw_unit", "o_status", "o_late")
@@ -105,7 +105,7 @@ def chunk_row(bed_id: int, blk: dict[str, Any], sealed: bool, level: int) -> dic
     times = [blk[c] for c in ("o_time", "d_time") if c in blk]
     allt = np.concatenate(times) if times else np.zeros(0)
     m = blk.get("o_mid", np.zeros(0, np.int64))
-    mm = blk.get("m_id")
+    mm: Any = blk.get("m_id")
     has = mm is not None and len(mm) > 0
     if has:
         allt = np.concatenate([allt, blk["m_time"]])
@@ -134,19 +134,19 @@ class Chunker:
         self.next_seq: int | None = None
         self.open: dict[int, list[int]] = {}      # bed_id -> [segments, messages] unsealed
 
-    def write(self, conn: Connection, obs: list[tuple], der: list[dict]) -> None:
-        t = ObsChunk.__table__
+    def write(self, conn: Connection, obs: list[Any], der: list[Any]) -> None:
+        t = TABLES["obs_chunks"]
         if self.next_seq is None:
             self.next_seq = (conn.execute(select(func.max(t.c.seq_max))).scalar() or 0) + 1
-        per: dict[int, tuple[list, list]] = {}
+        per: dict[int, tuple[list[tuple], list[dict]]] = {}
         for o in obs:
             per.setdefault(o[1], ([], []))[0].append(o)
         for d in der:
             per.setdefault(d["bed_id"], ([], []))[1].append(d)
         rows = []
-        for bed_id, (o, d) in per.items():
-            blk = block_of(o, d, self.next_seq)
-            self.next_seq += len(d)
+        for bed_id, (obs_b, der_b) in per.items():
+            blk = block_of(obs_b, der_b, self.next_seq)
+            self.next_seq += len(der_b)
             rows.append(chunk_row(bed_id, blk, False, 1))
         if not rows:
             return
@@ -170,7 +170,7 @@ class Chunker:
     def compact_all(self, conn: Connection) -> int:
         """Merge every bed's open segments into one (a writer closing): fewer, smaller rows;
         the messages stay in ``messages`` until the bed's chunk is really sealed."""
-        t = ObsChunk.__table__
+        t = TABLES["obs_chunks"]
         beds = [r[0] for r in conn.execute(
             select(t.c.bed_id).where(t.c.sealed.is_(False)).group_by(t.c.bed_id)
             .having(func.count() > 1))]
@@ -187,16 +187,14 @@ _M_COLS = ("id", "rx", "topic", "device", "seq", "time", "late", "n_obs")
 def seal(conn: Connection, bed_id: int, final: bool = True) -> int:
     """Merge a bed's unsealed segments into one chunk; ``final``: a sealed chunk, which also
     takes in the bed's observation messages from ``messages``. How many were merged."""
-    from .schema import Message
-
-    t = ObsChunk.__table__
+    t = TABLES["obs_chunks"]
     segs = conn.execute(select(t.c.id, t.c.data).where(t.c.bed_id == bed_id,
                                                        t.c.sealed.is_(False))
                         .order_by(t.c.id)).all()
     if not segs:
         return 0
     blk = merge([decode(s.data) for s in segs])
-    mt = Message.__table__
+    mt = TABLES["messages"]
     ids: list[int] = []
     if final:
         msgs = conn.execute(select(*[mt.c[c] for c in _M_COLS]).where(
@@ -220,7 +218,7 @@ def seal(conn: Connection, bed_id: int, final: bool = True) -> int:
 def sealed_messages(conn: Connection, min_mid: int | None = None,
                     bed_ids: Iterable[int] | None = None) -> Iterator[dict[str, Any]]:
     """Observation messages kept inside sealed chunks (as ``messages`` rows, kind obs)."""
-    t = ObsChunk.__table__
+    t = TABLES["obs_chunks"]
     stmt = select(t.c.bed_id, t.c.data).where(t.c.m_count > 0)
     if min_mid is not None:
         stmt = stmt.where(t.c.mid_max >= min_mid)
@@ -242,8 +240,8 @@ def sealed_messages(conn: Connection, min_mid: int | None = None,
 # --------------------------------------------------------------------------- reading
 
 def _chunks(conn: Connection, bed_ids: Iterable[int] | None, t0: float | None,
-            t1: float | None, need: str) -> list[Any]:
-    t = ObsChunk.__table__
+            t1: float | None, need: str) -> Sequence[Any]:
+    t = TABLES["obs_chunks"]
     stmt = select(t.c.id, t.c.bed_id, t.c.t_min, t.c.data).where(
         (t.c.n_obs if need == "obs" else t.c.n_derived) > 0)
     if bed_ids is not None:
@@ -255,7 +253,7 @@ def _chunks(conn: Connection, bed_ids: Iterable[int] | None, t0: float | None,
     return conn.execute(stmt.order_by(t.c.t_min, t.c.id)).all()
 
 
-def _merge_rows(chunks: list[Any], rows_of) -> Iterator[tuple]:
+def _merge_rows(chunks: Sequence[Any], rows_of) -> Iterator[tuple]:
     """Rows (sort key first) of chunks sorted by t_min, merged into one ordered stream."""
     heap: list[tuple] = []
     for c in chunks:

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 from pathlib import Path
+from typing import Any
 
 from rich import box
 from rich.console import Console
@@ -13,7 +14,7 @@ err = Console(stderr=True, soft_wrap=True)
 out = Console(soft_wrap=True)
 
 
-def _url(args) -> tuple[str, object]:
+def _url(args) -> tuple[str, Any]:
     from ..config import load_for_command
 
     cfg = load_for_command(args.config)

@@ -125,6 +125,7 @@ def decode(data: bytes) -> dict[str, Any]:
         b = raw[pos:pos + m["z"]]
         pos += m["z"]
         n, e = m["n"], m["e"]
+        v: Any
         if e == "fd":
             v = _undelta(_unshuffle(b, n, np.int64)).astype(np.float64) / float(10 ** m["k"])
         elif e == "fb":

@@ -84,7 +84,7 @@ def prune(engine: Engine, retention: Any, now: float | None = None,
     T = TABLES
     ch, msgs = T["obs_chunks"], T["messages"]
 
-    def gone(name: str, n: int) -> None:
+    def gone(name: str, n: int | None) -> None:
         if n:
             rep.removed[name] = rep.removed.get(name, 0) + int(n)
 
@@ -156,7 +156,7 @@ def table_bytes(engine: Engine) -> dict[str, int | None]:
                     "ON s.name = d.name GROUP BY s.tbl_name").all()
             except Exception:  # noqa: BLE001 - SQLite built without dbstat
                 return out
-            got = {r[0]: int(r[1]) for r in rows}
+            got: dict[str, Any] = {r[0]: int(r[1]) for r in rows}
         elif engine.dialect.name == "postgresql":
             got = {}
             for n in TABLES:
@@ -180,7 +180,7 @@ def stats(engine: Engine) -> dict[str, Any]:
             rows[n] = int(conn.execute(select(func.count()).select_from(t)).scalar() or 0)
         n_obs, n_der = conn.execute(select(func.coalesce(func.sum(ch.c.n_obs), 0),
                                            func.coalesce(func.sum(ch.c.n_derived), 0))).one()
-        spans: dict[int, list[float]] = {}
+        spans: dict[int, list[Any]] = {}
         for b, lo, hi in list(conn.execute(select(ch.c.bed_id, func.min(ch.c.t_min),
                                                   func.max(ch.c.t_max))
                                            .group_by(ch.c.bed_id))) + list(conn.execute(

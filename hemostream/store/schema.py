@@ -2,8 +2,10 @@
 
 from __future__ import annotations
 
+from typing import cast
+
 from sqlalchemy import (BigInteger, Boolean, Float, ForeignKey, Index, Integer, LargeBinary,
-                        String, Text, UniqueConstraint)
+                        String, Table, Text, UniqueConstraint)
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
 
 
@@ -184,13 +186,13 @@ class MinuteStat(Base):
     __table_args__ = (Index("ix_minute_stats_bed_param_minute", "bed_id", "param", "minute"),)
 
 
-TABLES = {
+TABLES: dict[str, Table] = {k: cast(Table, v) for k, v in {
     "beds": Bed.__table__, "messages": Message.__table__,
     "obs_chunks": ObsChunk.__table__, "minute_stats": MinuteStat.__table__,
     "admissions": Admission.__table__, "notes": Note.__table__,
     "commands": Command.__table__, "rejected": Rejected.__table__,
     "alarm_events": AlarmEvent.__table__, "config_snapshots": ConfigSnapshot.__table__,
-}
+}.items()}
 #: insertion order that respects foreign keys
 INSERT_ORDER = ("beds", "messages", "observations", "derived", "admissions", "notes",
                 "commands", "rejected", "alarm_events", "config_snapshots", "minute_stats")

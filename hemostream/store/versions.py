@@ -35,7 +35,7 @@ def _config(conn: Connection | None = None):
 def head() -> str:
     from alembic.script import ScriptDirectory
 
-    return ScriptDirectory.from_config(_config()).get_current_head()
+    return str(ScriptDirectory.from_config(_config()).get_current_head())
 
 
 def current(conn: Connection) -> str | None:

@@ -85,7 +85,7 @@ def upgrade() -> None:
         ders = [dict(r._mapping) for r in conn.execute(sa.text(
             "SELECT id, bed_id, param, time, value, unit, inputs FROM derived "
             "WHERE bed_id = :b ORDER BY id"), {"b": bed_id})]
-        der_of = [[] for _ in slices]
+        der_of: list[list[dict]] = [[] for _ in slices]
         for d in ders:
             der_of[bisect.bisect_right(bounds, d["time"])].append(d)
         for s, der in zip(slices, der_of):
