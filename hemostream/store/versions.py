@@ -113,6 +113,12 @@ def upgrade(url: str, metadata: Any) -> tuple[str | None, str]:
             if MigrationContext.configure(conn).get_current_revision() is None:
                 command.stamp(cfg, before)
             command.upgrade(cfg, "head")
+        if engine.dialect.name == "sqlite" and before != head():
+            raw = engine.raw_connection()       # give the moved rows' pages back
+            try:
+                raw.cursor().execute("VACUUM")
+            finally:
+                raw.close()
         return before, head()
     finally:
         engine.dispose()
