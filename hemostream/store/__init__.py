@@ -151,7 +151,7 @@ def newest_arrival(conn) -> float | None:
 
 
 from .writer import (RETRY_FIRST_S, RETRY_MAX_S, TUPLE_COLUMNS, Writer,  # noqa: F401,E402
-                     _content_error, _first_line, chunker, configure_chunks, rows_of,
+                     chunker, configure_chunks, rows_of,
                      write_rows)
 
 
