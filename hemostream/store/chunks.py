@@ -188,9 +188,10 @@ def seal(conn: Connection, bed_id: int, final: bool = True) -> int:
     """Merge a bed's unsealed segments into one chunk; ``final``: a sealed chunk, which also
     takes in the bed's observation messages from ``messages``. How many were merged."""
     t = TABLES["obs_chunks"]
+    # FOR UPDATE (PostgreSQL): two writers sealing one bed at once do not merge it twice
     segs = conn.execute(select(t.c.id, t.c.data).where(t.c.bed_id == bed_id,
                                                        t.c.sealed.is_(False))
-                        .order_by(t.c.id)).all()
+                        .order_by(t.c.id).with_for_update()).all()
     if not segs:
         return 0
     blk = merge([decode(s.data) for s in segs])
