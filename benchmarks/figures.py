@@ -146,15 +146,29 @@ def db_query(db: Path, sql: str, *args) -> list[tuple]:
 
 
 def stored_count(db: Path) -> int:
+    """The newest stored message id (messages still in the table, or in sealed chunks)."""
     r = db_query(db, "SELECT max(id) FROM messages")
-    return r[0][0] or 0 if r else 0
+    c = db_query(db, "SELECT max(mid_max) FROM obs_chunks")
+    return max(r[0][0] or 0 if r else 0, c[0][0] or 0 if c else 0)
+
+
+def obs_messages(db: Path) -> list[dict]:
+    """Every stored obs message (hemostream.store.iter_messages: table and sealed chunks)."""
+    from sqlalchemy import create_engine
+
+    from hemostream.store import iter_messages
+    engine = create_engine(f"sqlite:///{db}")
+    try:
+        return list(iter_messages(engine, "obs"))
+    finally:
+        engine.dispose()
 
 
 def loss_check(db: Path, expected_obs: int) -> dict:
     """Obs messages stored once each? ``lost`` and ``stored_twice`` must both be 0."""
-    total = db_query(db, "SELECT count(*) FROM messages WHERE kind = 'obs'")[0][0]
-    distinct = db_query(db, "SELECT count(*) FROM (SELECT DISTINCT device, seq, time "
-                            "FROM messages WHERE kind = 'obs')")[0][0]
+    msgs = obs_messages(db)
+    total = len(msgs)
+    distinct = len({(m["device"], m["seq"], m["time"]) for m in msgs})
     rejected = db_query(db, "SELECT count(*) FROM rejected")[0][0]
     return {"expected": expected_obs, "stored": total, "lost": expected_obs - distinct,
             "stored_twice": total - distinct, "rejected": rejected}
@@ -349,7 +363,7 @@ def _service_run(work: Path, sz: Sizes, k: int, n_all: int, n_obs: int,
             pubs = publishers(br.url, sz.publishers, *pub_args)
             pres = [last_json(p, "publisher", 600) for p in pubs]
             t_done = _wait_stored(db, n_all, 600, svc)
-            t_first = db_query(db, "SELECT min(rx) FROM messages WHERE kind = 'obs'")[0][0]
+            t_first = min(m["rx"] for m in obs_messages(db))
             rc = svc.stop()
         except BaseException:
             svc.kill()

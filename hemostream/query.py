@@ -14,7 +14,7 @@ from sqlalchemy import select
 
 from .core.wire import format_epoch as iso
 from .core.wire import parse_time
-from .store import TABLES, config_snapshots
+from .store import TABLES, config_snapshots, iter_derived, iter_observations
 
 KINDS = ("observations", "derived", "rejected", "notes", "alarms", "admissions", "commands",
          "configs")
@@ -41,6 +41,9 @@ def rows(engine, kind: str, bed: str | None = None, param: str | None = None,
     """Rows of ``kind`` as dicts with RFC 3339 times, oldest first."""
     if kind == "configs":          # configurations in force (store.config_snapshots)
         yield from ({**c, "time": iso(c["time"])} for c in config_snapshots(engine, since, limit))
+        return
+    if kind in ("observations", "derived"):
+        yield from _chunked_rows(engine, kind, bed, param, since, limit)
         return
     table = TABLES["alarm_events" if kind == "alarms" else kind]
     beds = TABLES["beds"]
@@ -90,6 +93,50 @@ def rows(engine, kind: str, bed: str | None = None, param: str | None = None,
                                  for p, t in v]
                     out[c] = v
             yield out
+
+
+def _bed_ids(conn, bed: str | None) -> dict[int, tuple[str, str]]:
+    beds = TABLES["beds"]
+    stmt = select(beds.c.id, beds.c.unit, beds.c.bed)
+    if bed:
+        if "/" in bed:
+            u, b = bed.split("/", 1)
+            stmt = stmt.where(beds.c.unit == u, beds.c.bed == b)
+        else:
+            stmt = stmt.where(beds.c.bed == bed)
+    return {r.id: (r.unit, r.bed) for r in conn.execute(stmt)}
+
+
+def _chunked_rows(engine, kind: str, bed: str | None, param: str | None,
+                  since: float | None, limit: int | None) -> Iterator[dict[str, Any]]:
+    """Observations or derived values (stored in chunks), as :func:`rows` gives them."""
+    with engine.connect() as conn:
+        names = _bed_ids(conn, bed)
+        if not names:
+            return
+        ids = list(names) if bed else None
+        params = [param] if param else None
+        n = 0
+        if kind == "observations":
+            for t, _mid, b, p, v, u, st, rv, ru, late in iter_observations(
+                    conn, ids, params, since):
+                unit, bed_name = names[b]
+                yield {"time": iso(t), "care_unit": unit, "bed": bed_name, "param": p,
+                       "value": v, "unit": u, "status": st, "raw_value": rv, "raw_unit": ru,
+                       "late": late}
+                n += 1
+                if limit and n >= limit:
+                    return
+        else:
+            for t, _seq, b, p, v, u, inputs in iter_derived(conn, ids, params, since):
+                unit, bed_name = names[b]
+                pairs = [[q, iso(x) if isinstance(x, float | int) else x]
+                         for q, x in json.loads(inputs)]
+                yield {"time": iso(t), "care_unit": unit, "bed": bed_name, "param": p,
+                       "value": v, "unit": u, "inputs": pairs}
+                n += 1
+                if limit and n >= limit:
+                    return
 
 
 #: the narrower set of columns the table format shows (jsonl and csv carry everything)

@@ -127,7 +127,7 @@ def replay_file(path: str | Path, db_url: str | None = None, config: Config | No
     proc = Processor(cfg, rules=rules, publish=False, next_ids=resume.next_ids,
                      known_beds=resume.beds,
                      known_messages=resume.messages)
-    writer = Writer(engine, max_batches=4)   # bounded memory: the writer paces the reader
+    writer = Writer(engine, max_batches=4, store_cfg=cfg.store)   # bounded: paces the reader
     summary = ReplaySummary(path=str(p), db_url=url)
     batch_rows = cfg.store.batch_rows
     max_bytes = cfg.ingest.max_payload_bytes

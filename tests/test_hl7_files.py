@@ -17,6 +17,7 @@ from hemostream.intake.hl7.files import (iter_messages, pcd01_stream, replay_hl7
                                          write_hl7_file)
 from hemostream.intake.hl7.mapping import map_message
 from hemostream.replay import replay_file
+from hemostream.store import derived_rows, observation_rows
 from simulators.ward import dumps, generate
 
 from test_hl7_mapping import BPM, CFG, nm, oru
@@ -57,19 +58,25 @@ def _obs_only(lines):
 
 
 def _rows(db):
+    from hemostream.store import iter_messages
     con = sqlite3.connect(db)
     try:
-        obs = con.execute(
-            "SELECT b.unit, b.bed, o.param, o.time, o.value, o.unit, o.raw_value, o.raw_unit, "
-            "o.status, o.late, m.device, m.seq FROM observations o JOIN beds b ON "
-            "b.id = o.bed_id JOIN messages m ON m.id = o.message_id "
-            "ORDER BY b.unit, b.bed, o.param, o.time, m.seq").fetchall()
-        derived = con.execute(
-            "SELECT b.unit, b.bed, d.param, d.time, d.value FROM derived d JOIN beds b ON "
-            "b.id = d.bed_id ORDER BY b.unit, b.bed, d.param, d.time").fetchall()
-        return obs, derived
+        beds = dict((i, (u, b)) for i, u, b in con.execute("SELECT id, unit, bed FROM beds"))
     finally:
         con.close()
+    msgs = {m["id"]: m for m in iter_messages(db_engine(db))}
+    obs = sorted((*beds[o["bed_id"]], o["param"], o["time"], o["value"], o["unit"],
+                  o["raw_value"], o["raw_unit"], o["status"], o["late"],
+                  msgs[o["message_id"]]["device"], msgs[o["message_id"]]["seq"])
+                 for o in observation_rows(db))
+    derived = sorted((*beds[d["bed_id"]], d["param"], d["time"], d["value"])
+                     for d in derived_rows(db))
+    return obs, derived
+
+
+def db_engine(db):
+    from sqlalchemy import create_engine
+    return create_engine(f"sqlite:///{db}")
 
 
 def test_pcd01_file_replays_to_the_same_rows_as_json(tmp_path):
@@ -132,7 +139,7 @@ def test_simulated_ward_published_over_mllp(tmp_path):
 
     assert run_server(f"sqlite:///{db}", hcfg, body) == {"AA": len(msgs)}
     n_obs = sum(len(line["payload"]["obs"]) for line in lines)
-    assert count(db, "SELECT count(*) FROM observations") == [(n_obs,)]
+    assert len(observation_rows(db)) == n_obs
 
 
 def test_cli_pieces_replay_write_publish(tmp_path, capsys):
@@ -152,7 +159,7 @@ def test_cli_pieces_replay_write_publish(tmp_path, capsys):
     text = capsys.readouterr().out
     assert f"AA {len(lines)}  AE 0  AR 0" in text
     n_obs = sum(len(line["payload"]["obs"]) for line in lines)
-    assert count(db, "SELECT count(*) FROM observations") == [(n_obs,)]
+    assert len(observation_rows(db)) == n_obs
     conf.write_text("[intake.hl7]\nno_such_key = 1\n")
     assert cli.replay_command(out, f"sqlite:///{db}", str(conf)) == 2
 
@@ -164,4 +171,4 @@ def test_cli_pieces_replay_write_publish(tmp_path, capsys):
 
     assert run_server(f"sqlite:///{db2}", Hl7Config(locations_from_components=True),
                       body) == 0
-    assert count(db2, "SELECT count(*) FROM observations") == [(n_obs,)]
+    assert len(observation_rows(db2)) == n_obs

@@ -19,6 +19,7 @@ from hemostream.intake.hl7.files import replay_hl7_file
 from hemostream.intake.hl7.mapping import (Hl7Error, control_id_to_seq, feed_hl7, map_message,
                                            parse_dtm)
 from hemostream.intake.hl7.terms import load_terms
+from hemostream.store import derived_rows, observation_rows
 
 ureg = pint.UnitRegistry()
 
@@ -79,8 +80,8 @@ def test_mixed_units_stored_converted_and_derived(tmp_path):
     ])
     summary, con = replay(tmp_path, [msg])
     assert summary.answers == {"AA": 1, "AE": 0, "AR": 0}
-    rows = {r[0]: r[1:] for r in con.execute(
-        "SELECT param, value, unit, raw_value, raw_unit, status, time FROM observations")}
+    rows = {r["param"]: (r["value"], r["unit"], r["raw_value"], r["raw_unit"], r["status"],
+                         r["time"]) for r in observation_rows(tmp_path / "store.db")}
     assert set(rows) == {"HR", "ABP_SYS", "ABP_DIA", "CVP", "CO"}
     dia = ureg.Quantity(8.8, "kPa").to("mmHg").magnitude          # source: pint
     cvp = ureg.Quantity(13, "cmH2O").to("mmHg").magnitude          # source: pint
@@ -88,7 +89,7 @@ def test_mixed_units_stored_converted_and_derived(tmp_path):
     assert rows["CVP"][:4] == (pytest.approx(cvp, rel=1e-5), "mm[Hg]", 13.0, "cm[H2O]")
     assert rows["ABP_SYS"][:4] == (118.0, "mm[Hg]", 118.0, "mm[Hg]")
     assert all(r[4] == "valid" and r[5] == T0_EPOCH for r in rows.values())
-    derived = {p: v for p, v in con.execute("SELECT param, value FROM derived")}
+    derived = {r["param"]: r["value"] for r in derived_rows(tmp_path / "store.db")}
     # MAP = DIA + (SYS - DIA) / 3 (common practice, estimated mean pressure)
     map_ = dia + (118 - dia) / 3
     assert derived["MAP"] == pytest.approx(map_, rel=1e-5)
@@ -109,7 +110,7 @@ def test_device_from_obx18_else_msh3_and_identity_dedup(tmp_path):
     assert summary.answers["AA"] == 2 and summary.duplicates == 2
     rows = con.execute("SELECT device, seq, n_obs FROM messages ORDER BY id").fetchall()
     assert rows == [("mon-nw3-01", 100017, 1), ("GW-NW3", 100017, 1)]
-    assert con.execute("SELECT count(*) FROM observations").fetchone() == (2,)
+    assert len(observation_rows(tmp_path / "store.db")) == 2
 
 
 def test_status_time_fallbacks_and_structure_rows():
@@ -214,7 +215,8 @@ def test_observation_rejects_keep_the_rest(tmp_path, obx, category, words):
     (cat, reason, device, seq, raw), = rejected(con)
     assert cat == category and words in reason, reason
     assert seq == 100017
-    assert con.execute("SELECT param, value FROM observations").fetchall() == [("SPO2", 96.0)]
+    assert [(r["param"], r["value"]) for r in observation_rows(tmp_path / "store.db")] == [
+        ("SPO2", 96.0)]
 
 
 def test_unparseable_file_content_is_a_reject(tmp_path):

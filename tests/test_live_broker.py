@@ -12,6 +12,7 @@ import time
 
 import pytest
 
+from hemostream.store import observation_rows
 from live_fixtures import (UNIT, ServiceThread, Subscriber, broker, live_config,  # noqa: F401
                            mqtt_transport, obs_lines, publish, query, repeated_identities,
                            stored_messages, wait_until)
@@ -34,7 +35,7 @@ def test_end_to_end_every_message_stored_once_and_outputs_published(broker, tmp_
         time.sleep(0.3)
         assert stored_messages(db) == 600
         assert repeated_identities(db) == []
-        assert query(db, "SELECT count(*) FROM observations")[0][0] == 600 * 6
+        assert len(observation_rows(db)) == 600 * 6
         assert svc.svc.health.duplicates == 200
         wait_until(lambda: sub.payloads("/derived"), 10, "derived values published")
         d = sub.payloads("/derived")[-1]

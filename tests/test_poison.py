@@ -201,8 +201,9 @@ def test_one_bad_observation_rejects_only_that_observation(service, bad):
                                     "AND seq = :s", s=seq), NEXT_OK_S, "the message stored")
     (mid,), = service.rows("SELECT id FROM messages WHERE device = 'gw-sdu9-bed-02' "
                            "AND seq = :s", s=seq)
-    params = sorted(p for p, in service.rows(
-        "SELECT param FROM observations WHERE message_id = :m", m=mid))
+    from hemostream.store import observation_rows
+    params = sorted(o["param"] for o in observation_rows(service.engine)
+                    if o["message_id"] == mid)
     assert params == ["CVP", "HR"]
     rej = service.rows("SELECT obs_index, reason FROM rejected WHERE device = 'gw-sdu9-bed-02' "
                        "AND seq = :s", s=seq)

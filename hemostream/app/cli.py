@@ -2,7 +2,8 @@
 
 ``replay``, ``query`` and ``check-config`` (storage and the core), ``run`` and ``ack`` (the
 live service over a broker), ``demo`` (:mod:`.demo`), ``watch`` (:mod:`.watch`), ``compare``
-and ``report`` (implemented in :mod:`hemostream.review`) and, when the simulators are
+and ``report`` (implemented in :mod:`hemostream.review`), ``db`` (:mod:`hemostream.store.cli`)
+and, when the simulators are
 installed, ``simulate``.
 """
 
@@ -39,6 +40,7 @@ from ..intake.hl7.mllp import Hl7ServiceIntake
 from ..replay import replay_file
 from ..review.cli import add_parsers as add_review_parsers
 from ..store import StoreError, open_engine
+from ..store.cli import add_parser as add_db_parser
 from .demo import run_demo
 from .watch import run_watch
 
@@ -464,6 +466,7 @@ def build_parser() -> argparse.ArgumentParser:
     add_live_parsers(sub)
     add_watch_parser(sub)
     add_review_parsers(sub)
+    add_db_parser(sub)
     if add_simulate_parser is not None:
         add_simulate_parser(sub, publisher=publish_lines, hl7=hl7_cli)
         add_validate_parser(sub)

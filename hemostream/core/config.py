@@ -84,9 +84,28 @@ class DeriveConfig(BaseModel):
         return self
 
 
+class RetentionConfig(BaseModel):
+    """How long stored data is kept (days; 0 keeps it forever). ``hemostream db prune`` and
+    the live service (every ``prune_every_s``, 0 = never) remove what is older."""
+
+    model_config = _STRICT
+    #: observations, derived values and observation messages at full rate
+    full_rate_days: Annotated[float, Field(ge=0)] = 30.0
+    #: per-minute median/min/max/count of each parameter and derived value
+    minute_stats_days: Annotated[float, Field(ge=0)] = 730.0
+    #: alarm events, notes, commands, admissions, rejects, configurations and their messages
+    audit_days: Annotated[float, Field(ge=0)] = 3650.0
+    prune_every_s: Annotated[float, Field(ge=0)] = 3600.0
+
+
 class StoreConfig(BaseModel):
     model_config = _STRICT
     url: str = "sqlite:///hemostream.db"
+    #: a bed's chunk is sealed (merged, compressed, its messages moved in) at this many
+    #: observation messages; before that, at most ``chunk_segments`` open segments
+    chunk_messages: Annotated[int, Field(gt=0)] = 900
+    chunk_segments: Annotated[int, Field(gt=1)] = 128
+    retention: RetentionConfig = Field(default_factory=RetentionConfig)
     #: derived values are recomputable from the stored observations, so each (bed, value)
     #: is stored when it first appears, when it moved by more than `derived_deadband`
     #: (relative) since the last stored one, or at least every `derived_every_s` seconds.

@@ -39,6 +39,7 @@ from ..core.wire import encode, format_epoch, input_filters
 from ..core.wire import status_topic as instance_status_topic
 from ..pipeline import make_rules
 from ..store import StoreError, Writer, load_resume, open_engine, record_config, rows_of
+from ..store.retention import prune as prune_store
 from .health import Health, log_line, status_payload
 from .transport import Incoming, Transport, TransportError
 
@@ -270,7 +271,7 @@ class Service:
         self.proc = Processor(cfg, rules=self.rules, next_ids=resume.next_ids,
                               known_beds=resume.beds, known_messages=resume.messages,
                               known_retained_rejects=resume.retained_rejects)
-        self.writer = Writer(engine, max_batches=16)
+        self.writer = Writer(engine, max_batches=16, store_cfg=cfg.store)
         self.inq: asyncio.Queue = asyncio.Queue(b.queue_size)
         log.info("hemostream %s: database %s, %d bed(s) and %d recent message identities "
                  "known, subscribing to %s", cfg.instance, _safe_url(self.db_url),
@@ -531,9 +532,35 @@ class Service:
                            f"acknowledged): {self.writer.error.__class__.__name__}")
                 return
             self.outbox.prune()
+            self._maybe_prune()
             if time.monotonic() >= next_health:
                 next_health += b.health_every_s
                 self.publish_health()
+
+    def _maybe_prune(self) -> None:
+        """Retention ([store.retention]): prune every prune_every_s, first after one
+        interval, on a worker thread (hemostream.store.retention)."""
+        every = self.cfg.store.retention.prune_every_s
+        now = time.monotonic()
+        nxt = getattr(self, "_next_prune", None)
+        if not every or getattr(self, "_pruning", None) is not None and not self._pruning.done():
+            return
+        if nxt is None:
+            self._next_prune = now + every
+            return
+        if now >= nxt:
+            self._next_prune = now + every
+            self._pruning = asyncio.ensure_future(asyncio.to_thread(self._prune_once))
+
+    def _prune_once(self) -> None:
+        try:
+            rep = prune_store(self.writer.engine, self.cfg.store.retention, self.clock())
+        except Exception as e:  # noqa: BLE001 - tried again at the next interval
+            log.warning("pruning failed, will try again: %s", e.__class__.__name__)
+            return
+        if rep.removed:
+            log.info("pruned past retention: %s", ", ".join(
+                f"{n} {k}" for k, n in sorted(rep.removed.items())))
 
     def publish_health(self) -> dict:
         h = self.health

@@ -10,7 +10,7 @@ from typing import Any, Iterable
 from sqlalchemy import func, select
 from sqlalchemy.engine import Engine
 
-from ..store import TABLES, config_in_force
+from ..store import TABLES, config_in_force, iter_derived, iter_observations
 from .periods import AlarmPeriod, InfoEvent, build_periods
 
 
@@ -39,11 +39,19 @@ def load_beds(engine: Engine) -> dict[int, BedInfo]:
     with engine.connect() as conn:
         beds = {r.id: BedInfo(r.id, r.unit, r.bed)
                 for r in conn.execute(select(beds_t).order_by(beds_t.c.unit, beds_t.c.bed))}
-        for r in conn.execute(select(msgs.c.bed_id, func.min(msgs.c.time), func.max(msgs.c.time))
-                              .where(msgs.c.kind == "obs").group_by(msgs.c.bed_id)):
+        ch = TABLES["obs_chunks"]
+        spans = list(conn.execute(select(msgs.c.bed_id, func.min(msgs.c.time),
+                                         func.max(msgs.c.time))
+                                  .where(msgs.c.kind == "obs").group_by(msgs.c.bed_id)))
+        spans += list(conn.execute(select(ch.c.bed_id, func.min(ch.c.msg_t_min),
+                                          func.max(ch.c.msg_t_max))
+                                   .where(ch.c.m_count > 0).group_by(ch.c.bed_id)))
+        for r in spans:                 # messages still in the table, and in sealed chunks
             b = beds.get(r[0])
-            if b is not None:
-                b.start, b.end = float(r[1]), float(r[2])
+            if b is not None and r[1] is not None:
+                lo, hi = float(r[1]), float(r[2])
+                b.start = lo if b.start is None else min(b.start, lo)
+                b.end = hi if b.end is None else max(b.end, hi)
     return beds
 
 
@@ -98,27 +106,20 @@ def load_bed(engine, bed: BedInfo, t0: float, t1: float, obs_params: list[str],
              der_params: list[str]) -> BedData:
     """One bed's observations and derived values of these parameters over [t0, t1] (with a
     margin), its admissions, alarm periods, information events, notes and commands."""
-    obs_t, der_t, adm_t = TABLES["observations"], TABLES["derived"], TABLES["admissions"]
+    adm_t = TABLES["admissions"]
     bd = BedData(bed)
     margin = 120.0
     with engine.connect() as conn:
-        for r in conn.execute(
-                select(obs_t.c.param, obs_t.c.time, obs_t.c.value, obs_t.c.status)
-                .where(obs_t.c.bed_id == bed.id, obs_t.c.param.in_(obs_params),
-                       obs_t.c.time >= t0 - margin, obs_t.c.time <= t1 + margin)
-                .order_by(obs_t.c.time, obs_t.c.id)):
-            bd.obs.setdefault(r.param, []).append((r.time, r.value, r.status))
-        for r in conn.execute(
-                select(der_t.c.param, der_t.c.time, der_t.c.value, der_t.c.unit,
-                       der_t.c.inputs)
-                .where(der_t.c.bed_id == bed.id, der_t.c.param.in_(der_params),
-                       der_t.c.time >= t0 - margin, der_t.c.time <= t1 + margin)
-                .order_by(der_t.c.time, der_t.c.id)):
+        for t, _m, _b, param, value, _u, status, *_ in iter_observations(
+                conn, [bed.id], obs_params, t0 - margin, t1 + margin):
+            bd.obs.setdefault(param, []).append((t, value, status))
+        for t, _q, _b, param, value, unit, text in iter_derived(
+                conn, [bed.id], der_params, t0 - margin, t1 + margin):
             try:
-                inputs = json.loads(r.inputs)
+                inputs = json.loads(text)
             except ValueError:
                 inputs = []
-            bd.derived.setdefault(r.param, []).append((r.time, r.value, r.unit, inputs))
+            bd.derived.setdefault(param, []).append((t, value, unit, inputs))
         bd.admissions = [dict(r._mapping) for r in conn.execute(
             select(adm_t).where(adm_t.c.bed_id == bed.id).order_by(adm_t.c.time, adm_t.c.id))]
     bd.periods, bd.info = build_periods(alarm_rows(engine, [bed.id]))
