@@ -23,7 +23,7 @@ n) per timer) and never scans all beds.
 from __future__ import annotations
 
 import heapq
-from typing import Any
+from typing import Any, Mapping
 
 from ..alarms import CommandError, RuleEvent
 from .artifacts import ArtifactDetector
@@ -85,8 +85,12 @@ class RulesEngine:
     # ================================================================== inputs
 
     def on_values(self, bed: str, t: float, fresh: dict[str, float], new: frozenset[str],
-                  nonvalid: dict[str, str], device: str) -> list[RuleEvent]:
-        """One accepted observation message, after derivations (see docs/rules.md)."""
+                  nonvalid: dict[str, str], device: str,
+                  times: Mapping[str, float] | None = None) -> list[RuleEvent]:
+        """One accepted observation message, after derivations (see docs/rules.md).
+
+        ``times``: measurement time of the new values where it differs from ``t`` (an
+        intermittent measurement is older than its message); missing names are at ``t``."""
         if not self.cfg.enabled:
             return []
         b = self._beds.get(bed) or self._bed(bed)
@@ -100,7 +104,7 @@ class RulesEngine:
         if b.art.sig_since or self.book.get(bed, ARTIFACT) is not None:
             ev += self.technical.artifact_alarm(b, t)
         changed = self.trending.feed(b, t, fresh, new, excluded)
-        self.fluid.on_values(b, t, fresh, new, excluded, ev)
+        self.fluid.on_values(b, t, fresh, new, excluded, ev, times)
         self.limits.evaluate(b, t, fresh, new, excluded, ev)
         self.patterns.evaluate(b, t, fresh, new, changed, excluded, ev)
         self.profile.on_values(b, t, fresh, new, changed, excluded, ev)
@@ -118,6 +122,8 @@ class RulesEngine:
                 tr = b.trends.get(p)
                 if tr is not None:
                     tr.reset()
+        if self.cfg.fluid_challenge.enabled:
+            self.fluid.note(self._bed(bed), t, kind, param)
         if kind in self.cfg.artifacts.note_kinds:
             b = self._bed(bed)
             chs = self.art.note(b.art, t, param, duration_s)
