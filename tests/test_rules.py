@@ -115,7 +115,8 @@ def test_mismatch_uses_co_without_body_surface_area():
         return v
 
     r = raised(run(eng, T0, onset + 900, fn), "right_heart_mismatch")
-    assert r and {x["param"] for x in r[0].details["terms"]} == {"CVP", "CO"}
+    # the output term falls back to CO and the stroke-volume term to SV
+    assert r and {x["param"] for x in r[0].details["terms"]} == {"CVP", "CO", "SV"}
 
 
 # --------------------------------------------------------------------------- shock index

@@ -133,8 +133,12 @@ class RulesEngine:
                     tr.drop_since(t)
             if self.book.get(bed, ARTIFACT) is not None:
                 ev += self.technical.artifact_alarm(b, t)
-        elif kind == "fluid_bolus" and self.cfg.fluid_challenge.enabled:
-            ev += self.fluid.open(self._bed(bed), t, volume_ml, over_min)
+        elif kind == "fluid_bolus":
+            b = self._bed(bed)
+            over = self.cfg.fluid_challenge.default_over_min if over_min is None else over_min
+            b.fluid_until = max(b.fluid_until, t + float(over) * 60.0)
+            if self.cfg.fluid_challenge.enabled:
+                ev += self.fluid.open(b, t, volume_ml, over_min)
         return ev
 
     def on_admit(self, bed: str, t: float, limits: dict[str, dict[str, float]] | None = None,
@@ -203,9 +207,9 @@ class RulesEngine:
 
     # ================================================================== read-outs
 
-    def classify(self, levels: dict[str, float | None]) -> str | None:
+    def classify(self, levels: dict[str, float | None], cvp_rising: bool = False) -> str | None:
         """Profile read-out from levels of CVP, PAWP, CI and SVR (see :func:`.profile.classify`)."""
-        return classify(self.profile.ranges, levels)
+        return classify(self.profile.ranges, levels, cvp_rising)
 
     def bed_view(self, bed: str) -> dict[str, Any]:
         """Dashboard model of one bed (JSON-able)."""
