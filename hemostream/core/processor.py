@@ -29,6 +29,7 @@ from .outputs import (OBSERVATION_COLUMNS, Counters, Outputs,  # noqa: F401  (re
 from .rejects import (RecordingLineBytes, Reject, category_of,  # noqa: F401
                       format_validation_error, reject_row, short)
 from .derive import DERIVED_UNITS, Current, derive_all, bsa_dubois, bsa_mosteller
+from .rules.phrases import phrase
 from .rules.protocol import RulesLayer
 from .units import BY_DIMENSION, CANONICAL, UNITS
 from .wire import epoch, format_epoch as iso  # noqa: F401  (re-exported)
@@ -482,8 +483,11 @@ class Processor:
             self.counters.alarm_events += 1
             if not self.publish:
                 continue
+            word = getattr(self.rules, "phrase", None)
             self.out.publish.append((f"hemo/{unit}/{bed_name}/alarm",
-                                     {"v": 1, "event": {**ev.as_row(), "time": iso(ev.time)}},
+                                     {"v": 1, "event": {**ev.as_row(), "time": iso(ev.time),
+                                                        "phrase": word(ev.rule) if word
+                                                        else phrase(ev.rule)}},
                                      False))
             state = self.rules.alarm_state(ev.bed)
             self.out.publish.append((f"hemo/{unit}/{bed_name}/alarm",

@@ -33,6 +33,7 @@ from .config import RulesConfig
 from .fluid import FluidChallenge
 from .limits import Limits
 from .patterns import Patterns
+from .phrases import phrase
 from .profile import PROFILE_TEXT, Profile, classify
 from .state import BedState, Shared
 from .technical import Technical
@@ -60,6 +61,8 @@ class RulesEngine:
         self.technical = Technical(sh, self.art)
         self.fluid = FluidChallenge(sh)
         self.profile = Profile(sh, self.trending)
+        #: configured pattern messages: the phrase of a rule the phrase table does not know
+        self._messages = {rid: p.message for rid, p in cfg.patterns.items() if p.message}
 
     # ================================================================== plumbing
 
@@ -207,6 +210,13 @@ class RulesEngine:
 
     # ================================================================== read-outs
 
+    def phrase(self, rule: str) -> str:
+        """The short phrase screens show for ``rule`` (see :mod:`.phrases`)."""
+        return phrase(rule, self._messages)
+
+    def _alarm_dicts(self, bed: str) -> list[dict[str, Any]]:
+        return [{**a.as_dict(), "phrase": self.phrase(a.rule)} for a in self.book.active(bed)]
+
     def classify(self, levels: dict[str, float | None], cvp_rising: bool = False) -> str | None:
         """Profile read-out from levels of CVP, PAWP, CI and SVR (see :func:`.profile.classify`)."""
         return classify(self.profile.ranges, levels, cvp_rising)
@@ -218,7 +228,7 @@ class RulesEngine:
             return {"trends": {}, "alarms": [], "profile": None, "profile_text": None,
                     "fluid_challenge": None}
         return {"trends": self.trending.view(b),
-                "alarms": [a.as_dict() for a in self.book.active(bed)],
+                "alarms": self._alarm_dicts(bed),
                 "profile": b.profile,
                 "profile_text": PROFILE_TEXT.get(b.profile) if b.profile else None,
                 "fluid_challenge": dict(b.fc_last) if b.fc_last else None,
@@ -234,6 +244,6 @@ class RulesEngine:
 
     def alarm_state(self, bed: str) -> dict[str, Any]:
         """Current alarm state of the bed (retained on ``hemo/<unit>/<bed>/alarm``)."""
-        act = self.book.active(bed)
-        return {"alarms": [a.as_dict() for a in act], "count": len(act),
-                "highest": act[0].priority if act else None}
+        act = self._alarm_dicts(bed)
+        return {"alarms": act, "count": len(act),
+                "highest": act[0]["priority"] if act else None}
