@@ -158,14 +158,18 @@ def default_patterns() -> dict[str, PatternRule]:
                    T(param="HR", trend="rising")],
             priority="medium", delay_s=60, clear_delay_s=60),
         "vasodilation_pattern": P(
-            description="SVR and MAP falling while cardiac output is held or rising: "
-                        "vessels relaxing.",
+            description="SVR falling while the reflex answers (HR rising, cardiac output held "
+                        "or rising) and MAP is not rising, sustained for 5 minutes: vessels "
+                        "relaxing, found in the compensated phase before MAP falls.",
             source="MAP - CVP = CO x SVR (hydraulic analogue of Ohm's law), critical care "
-                   "texts (Marino, The ICU Book) - from memory",
+                   "texts (Marino, The ICU Book) - from memory; baroreflex answer to a fall "
+                   "in resistance: common practice; 5-minute hold: project choice (the "
+                   "slow swings of a stable adult's SVR and output align for 3-4 minutes at "
+                   "most on the simulators)",
             message="pattern consistent with vasodilation",
-            terms=[T(param="SVR", trend="falling"), T(param="MAP", trend="falling"),
-                   T(param=["CI", "CO"], trend="not_falling")],
-            priority="low", delay_s=60, clear_delay_s=60),
+            terms=[T(param="SVR", trend="falling"), T(param=["CI", "CO"], trend="not_falling"),
+                   T(param="MAP", trend="not_rising"), T(param="HR", trend="rising")],
+            priority="low", delay_s=300, clear_delay_s=60),
     }
 
 
