@@ -28,7 +28,7 @@ PHRASES: dict[str, str] = {
     "shock_index_rising": "shock index rising",
     "low_output": "low cardiac output",
     "hypovolemia_pattern": "CVP and output falling, HR rising",
-    "vasodilation_pattern": "SVR falling, output held",
+    "vasodilation_pattern": "SVR falling, HR rising",
     FEED_SILENT: "no data from a channel",
     DEVICE_SILENT: "no data from the monitor",
     NOT_VALID: "values not valid",
