@@ -211,21 +211,50 @@ def cmd_ack(args) -> int:
         print(f"error: {e}", file=sys.stderr)
         return 2
 
-    async def send() -> None:
+    alarm_topic = topic(unit, bed, "alarm")
+
+    async def send() -> str | None:
+        """Publish the command and wait for the service's word on it (None: no word)."""
         await t.connect()
         try:
+            await t.subscribe([alarm_topic], 1)       # before sending: the answer may be fast
             await t.publish_wait(cmd_topic, encode(body), 1, False, timeout=10)
+            deadline = time.monotonic() + args.wait
+
+            async def answer() -> str | None:
+                async for m in t.messages():
+                    try:
+                        c = json.loads(m.payload).get("command")
+                    except (ValueError, AttributeError):
+                        continue
+                    if (isinstance(c, dict) and c.get("alarm") == args.alarm
+                            and c.get("by") == args.by and c.get("action") == action
+                            and c.get("time") == body["time"]):
+                        return str(c.get("result"))
+                return None
+            try:
+                return await asyncio.wait_for(answer(), max(0.0, deadline - time.monotonic()))
+            except asyncio.TimeoutError:
+                return None
         finally:
             await t.disconnect()
 
     try:
-        asyncio.run(send())
+        result = asyncio.run(send())
     except TransportError as e:
         print(f"error: {e}", file=sys.stderr)
         return 1
-    print(f"sent {action} of {args.alarm!r} on {unit}/{bed} by {args.by} to {t.address}; "
-          "hemostream stores it for audit and publishes the new alarm state on "
-          f"{topic(unit, bed, 'alarm')}")
+    where = f"{action} of {args.alarm!r} on {unit}/{bed} by {args.by}"
+    if result is None:
+        print(f"error: no hemostream service applied or refused the {where} within "
+              f"{args.wait:g} s (is `hemostream run` serving unit {unit}? was the command "
+              "allowed by the broker's ACL?); the alarm's state is unchanged as far as is "
+              "known", file=sys.stderr)
+        return 1
+    if result != "applied":
+        print(f"error: {where}: {result}", file=sys.stderr)
+        return 1
+    print(f"{where}: applied, stored for audit; the new alarm state is on {alarm_topic}")
     return 0
 
 
@@ -362,6 +391,9 @@ def add_live_parsers(sub) -> None:
     a.add_argument("--by", required=True, metavar="NAME", help="who acknowledges")
     a.add_argument("--pause-audio", action="store_true",
                    help="pause the alarm's audio instead of acknowledging it")
+    a.add_argument("--wait", type=float, default=10.0, metavar="SECONDS",
+                   help="how long to wait for the service to apply or refuse it (default 10); "
+                   "the exit status is 0 only when it was applied")
     a.add_argument("--broker", metavar="URL", help="broker URL (overrides broker.url)")
     a.add_argument("--config", metavar="FILE",
                    help="configuration with the broker section (credentials, TLS files)")
