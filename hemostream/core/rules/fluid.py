@@ -37,6 +37,9 @@ from .state import BedState, Shared
 
 __all__ = ["FluidChallengeConfig", "Eval", "FluidChallenge"]
 
+NoteKind = Literal["zeroing", "reposition", "line_flush", "sample_draw"]
+_OFFSET_NOTES: tuple[NoteKind, ...] = ("zeroing", "reposition")
+
 #: samples per half of the CVP step test (two consecutive runs are compared)
 _STEP_RUN = 10
 
@@ -74,9 +77,8 @@ class FluidChallengeConfig(BaseModel):
     #: samples is a moved or re-zeroed transducer, not filling (common practice)
     cvp_step_mmhg: Annotated[float, Field(gt=0)] = 3.0
     #: notes that move the CVP reference (on the CVP channel, or without ``param``)
-    cvp_offset_note_kinds: list[Literal["zeroing", "reposition", "line_flush",
-                                        "sample_draw"]] = Field(
-        default_factory=lambda: ["zeroing", "reposition"])
+    cvp_offset_note_kinds: list[NoteKind] = Field(
+        default_factory=lambda: list(_OFFSET_NOTES))
 
     @field_validator("params")
     @classmethod
