@@ -408,3 +408,54 @@ def test_no_password_in_any_error_or_log_line(tmp_path):
         assert r.returncode != 0, args
         assert secret not in r.stdout + r.stderr, (args, r.stderr)
         assert "***" in r.stderr, r.stderr
+
+
+# --------------------------------------------------------------------------- faults of our own
+
+def test_a_fault_in_the_rules_is_kept_and_the_next_message_goes_on():
+    """Should the rules engine (or anything in the core) fail on one message, that message's
+    rows stay, the fault is a reject (internal_error) and the next message is processed."""
+    from hemostream.core.processor import Processor
+    from hemostream.pipeline import make_rules
+    from hemostream.core.config import Config
+
+    class Faulty:
+        def __init__(self, inner):
+            self.inner, self.calls = inner, 0
+
+        def __getattr__(self, name):
+            return getattr(self.inner, name)
+
+        def on_values(self, *a, **k):
+            self.calls += 1
+            if self.calls == 1:
+                raise KeyError("SV")
+            return self.inner.on_values(*a, **k)
+
+    cfg = Config()
+    proc = Processor(cfg, rules=Faulty(make_rules(cfg)))
+    for seq in (1, 2):
+        proc.feed(f"{T}/obs", json.dumps(obs("gw-sdu9-bed-01", seq, NOW)).encode(), NOW + 0.2)
+    out = proc.drain()
+    assert [m["seq"] for m in out.messages] == [1, 2]
+    assert [r["category"] for r in out.rejected] == ["internal_error"]
+    assert "KeyError" in out.rejected[0]["reason"]
+    assert proc.counters.internal_errors == 1
+
+
+def test_a_value_older_than_its_maximum_age_is_not_new_to_the_rules():
+    """An observation carrying its own time, older than its maximum age (SV: 10 s), is stored
+    but not current; the rules are not told it is new (they once failed on it)."""
+    from hemostream.core.processor import Processor
+    from hemostream.pipeline import make_rules
+    from hemostream.core.config import Config
+
+    cfg = Config()
+    proc = Processor(cfg, rules=make_rules(cfg))
+    old = iso(NOW - 60)
+    proc.feed(f"{T}/obs", json.dumps(obs("gw-sdu9-bed-01", 1, NOW, [
+        {"param": "HR", "value": 80, "unit": "/min"},
+        {"param": "SV", "value": 70, "unit": "mL", "time": old}])).encode(), NOW + 0.2)
+    out = proc.drain()
+    assert out.rejected == []
+    assert sorted(o[2] for o in out.observations) == ["HR", "SV"]

@@ -68,6 +68,8 @@ class Counters:
     derived_computed: int = 0
     derived_stored: int = 0
     alarm_events: int = 0
+    #: faults of hemostream itself while processing a message (each kept as a reject)
+    internal_errors: int = 0
     rejected: dict[str, int] = field(default_factory=dict)
 
     def reject(self, category: str) -> None:

@@ -153,6 +153,8 @@ class Processor:
                 self._feed(topic, payload, rx_t)
             except Reject as r:
                 self._reject(r.category, r.reason, topic, payload, rx_t)
+            except Exception as e:  # noqa: BLE001 - a fault of ours must not stop the unit
+                self._internal_error(e, topic, payload, rx_t)
         finally:
             self._retained_key = None
 
@@ -164,7 +166,25 @@ class Processor:
     def tick(self, now: float) -> None:
         """Advance time-driven conditions (silent feeds, pause expiry) to ``now``."""
         if self.rules is not None:
-            self._rule_events(self.rules.tick(now))
+            try:
+                self._rule_events(self.rules.tick(now))
+            except Exception as e:  # noqa: BLE001
+                self._internal_error(e, "", b"", now)
+
+    def _internal_error(self, e: Exception, topic: str, payload: bytes | str | dict,
+                        rx: float | None) -> None:
+        """A fault in hemostream itself while processing one message: what was produced for
+        the message stays, the fault is kept for audit (category ``internal_error``, the
+        exception and where it was raised) and the next message is processed as usual."""
+        self.counters.internal_errors += 1
+        tb = e.__traceback__
+        while tb is not None and tb.tb_next is not None:
+            tb = tb.tb_next
+        where = (f"{tb.tb_frame.f_code.co_filename.rsplit('/', 1)[-1]}:{tb.tb_lineno}"
+                 if tb is not None else "?")
+        self._reject("internal_error", f"hemostream failed processing this message "
+                     f"({e.__class__.__name__}: {str(e)[:200]} at {where}); what it produced "
+                     "before the failure is kept", topic, payload, rx)
 
     # ------------------------------------------------------------------ internals
 
@@ -180,6 +200,8 @@ class Processor:
             self._accept(tp, topic, msg, rx, payload)
         except Reject as r:
             self._reject(r.category, r.reason, topic, payload, rx)
+        except Exception as e:  # noqa: BLE001 - a fault of ours must not stop the unit
+            self._internal_error(e, topic, payload, rx)
 
     def _route(self, topic: str):
         """The parsed topic, checked against the served units (valid ones are cached)."""
@@ -410,6 +432,9 @@ class Processor:
                 n_stored += 1
         self.counters.derived_stored += n_stored
         new.update([d[0] for d in derived])
+        # a value that came with this message but is already older than its maximum age is
+        # stored, yet it is not current: the rules see only what is current
+        new.intersection_update(fresh)
         if self.rules is not None:
             self._rule_events(self.rules.on_values(bed.key, now, fresh, frozenset(new),
                                                    nonvalid, device,
