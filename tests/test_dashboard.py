@@ -85,8 +85,10 @@ def test_priorities_colours_and_acknowledged_differ():
     c = render(v, 120, 40, T0 + 1)
     ansi = c.export_text(styles=True, clear=False)
     text = c.export_text(styles=False)
-    assert "HIGH shock_index_high" in text and "MEDIUM low_output (acknowledged)" in text
-    assert "LOW technical: feed_silent" in text
+    # each alarm by its phrase (hemostream.core.rules.phrases), not its rule id
+    assert "HIGH shock index high" in text and "MEDIUM low cardiac output (acknowledged)" in text
+    assert "LOW technical: no data from a channel" in text
+    assert "shock_index_high" not in text
     import re
 
     def sgr(word):   # the ANSI select-graphic-rendition codes drawn before ``word``
@@ -119,7 +121,7 @@ def test_detail_view_lists_parameters_alarms_and_notes():
                        100, 40))
     text = c.export_text()
     assert "SDU7/bed-01 detail" in text and "ABP_SYS" in text and "fluid_bolus 500 mL" in text
-    assert "HIGH shock_index_high" in text and "not a diagnosis" in text
+    assert "HIGH shock index high" in text and "not a diagnosis" in text
 
 
 def test_scripted_keys_move_open_and_acknowledge():

@@ -158,8 +158,8 @@ def test_one_plot_per_panel_with_the_alarm_spans_and_notes(page):
     tl = figures["panel-alarms"]
     titles = [g.find(f"{SVG}title").text for g in tl.iter(f"{SVG}g")
               if g.get("class") == "alarm-span"]
-    assert titles[0].startswith("HR_high (medium priority")
-    assert titles[1].startswith("ABP_MEAN_low (high priority")
+    assert titles[0].startswith("HR high (medium priority")          # the phrase
+    assert titles[1].startswith("arterial mean low (high priority")
     assert "acknowledged 11:06:40 by RN M. Vasquez-Hale" in titles[1]
     # raised and cleared times in the alarm table agree with the worked-out ones
     table = ET.tostring(root, encoding="unicode")

@@ -115,7 +115,8 @@ def test_mismatch_uses_co_without_body_surface_area():
         return v
 
     r = raised(run(eng, T0, onset + 900, fn), "right_heart_mismatch")
-    assert r and {x["param"] for x in r[0].details["terms"]} == {"CVP", "CO"}
+    # the output term falls back to CO and the stroke-volume term to SV
+    assert r and {x["param"] for x in r[0].details["terms"]} == {"CVP", "CO", "SV"}
 
 
 # --------------------------------------------------------------------------- shock index
@@ -174,9 +175,10 @@ def test_vasodilation_pattern_and_not_when_output_falls():
     rng = random.Random(7)
     onset = T0 + 900
     eng = RulesEngine()
-    # SBP/DBP down (MAP and SVR falling) while CO is held
+    # SBP/DBP down (MAP and SVR falling) while CO is held and the reflex raises HR (the
+    # pattern asks for that answer: HR rising, beyond its 5 /min per 10 min band)
     evs = run(eng, T0, onset + 900, lambda t: patient(
-        72 + ramp(t, onset, 0.5), 120 - ramp(t, onset, 1.5), 70 - ramp(t, onset, 1.2), 6,
+        72 + ramp(t, onset, 1.0), 120 - ramp(t, onset, 1.5), 70 - ramp(t, onset, 1.2), 6,
         5.5, rng=rng))
     assert raised(evs, "vasodilation_pattern")
     eng = RulesEngine()

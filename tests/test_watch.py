@@ -70,7 +70,7 @@ def test_watch_shows_the_unit_and_acknowledges(broker, tmp_path):
         r = subprocess.CompletedProcess(proc.args, proc.returncode, out, err)
         assert r.returncode == 0, r.stderr
         assert "bed-01" in r.stdout and "bed-02" in r.stdout
-        assert "MEDIUM HR_high" in r.stdout            # the retained alarm state
+        assert "MEDIUM HR high" in r.stdout            # the retained alarm state, by phrase
         assert "not a medical device" in r.stdout
         # acknowledge from the dashboard's command path
         feed.send_command(f"{UNIT}/bed-01", "acknowledge", alarm["id"], "RN P. Lindqvist")

@@ -29,6 +29,7 @@ from typing import Any, Callable, Iterable, Iterator, TextIO
 from rich.console import Console
 
 from .. import CAUTION
+from ..core.rules.phrases import phrase
 from ..core.config import Config
 from ..core.wire import (bed_topic, command_body, encode, format_epoch, is_status_topic,
                          parse_time_or_none, split_topic, status_topic, topic)
@@ -163,8 +164,8 @@ class Summary:
             st = b["alarms"]
             alarms = ""
             if isinstance(st, dict) and st.get("count"):
-                names = [a.get("rule") or a.get("id") or "?" for a in st.get("alarms", [])
-                         if isinstance(a, dict)]
+                names = [a.get("phrase") or phrase(str(a.get("rule") or a.get("id") or "?"))
+                         for a in st.get("alarms", []) if isinstance(a, dict)]
                 alarms = f"  ALARM {st.get('highest')}: {', '.join(names[:3])}"
             out.append(f"  {key:<18} {shown or '(waiting for values)'}{alarms}")
         for e in self.events:

@@ -29,6 +29,7 @@ from .outputs import (OBSERVATION_COLUMNS, Counters, Outputs,  # noqa: F401  (re
 from .rejects import (RecordingLineBytes, Reject, category_of,  # noqa: F401
                       format_validation_error, reject_row, short)
 from .derive import DERIVED_UNITS, Current, derive_all, bsa_dubois, bsa_mosteller
+from .rules.phrases import phrase
 from .rules.protocol import RulesLayer
 from .units import BY_DIMENSION, CANONICAL, UNITS
 from .wire import epoch, format_epoch as iso  # noqa: F401  (re-exported)
@@ -41,9 +42,19 @@ EFFECTIVE_SOURCES = {
     "MAP": frozenset({"ABP_MEAN", "ABP_SYS", "ABP_DIA", "NIBP_MEAN", "NIBP_SYS", "NIBP_DIA"}),
     "SBP": frozenset({"ABP_SYS", "NIBP_SYS"}),
     "PAP_MEAN": frozenset({"PAP_MEAN", "PAP_SYS", "PAP_DIA"}),
-    "HR": frozenset({"HR", "PR"}), "SV": frozenset({"SV", "HR", "PR", "CO"}),
-    "CO": frozenset({"CO", "HR", "PR", "SV"}),
+    "HR": frozenset({"HR", "PR"}),
+    # a stroke volume or output calculated from the other and HR is new only when the output
+    # measurement is (see OUTPUT_PARAMS): a new HR does not make an old output new
+    "SV": frozenset({"SV", "CO"}), "CO": frozenset({"CO", "SV"}),
 }
+
+#: the cardiac output measurements. A value derived from one of them (SV from CO, CI, SVI,
+#: SVR, SVRI, PVR, LVSWI, RVSWI) is computed only in a message that brings a new output
+#: measurement, and it is dated at that measurement: an intermittent (thermodilution) CO
+#: gives one set of derived values per measurement, not one a second from the old CO and the
+#: current HR; a continuous CO, new every message, gives them every message as before
+#: (docs/rules.md, "Intermittent cardiac output")
+OUTPUT_PARAMS = frozenset({"CO", "SV"})
 
 def arrival_epoch(rx: Any) -> float | None:
     """Epoch seconds of an arrival time given as epoch seconds or an aware datetime, or None
@@ -381,13 +392,22 @@ class Processor:
         max_age = self._max_age
         cur = {p: c for p, c in bed.latest.items() if now - c.time <= max_age[p]}
         derived, eff = derive_all(cur, bed.bsa)
+        output_new = not new.isdisjoint(OUTPUT_PARAMS)
+        if not output_new:
+            # nothing is re-derived from an output measurement that is not new
+            derived = [d for d in derived if not _from_output(d[2])]
+            for name in ("SV", "CO"):
+                if name in eff and name not in cur:
+                    del eff[name]
         self.counters.derived_computed += len(derived)
         st = self.cfg.store
         every, band = st.derived_every_s, st.derived_deadband
         stored = bed.stored
         fresh: dict[str, float] = {p: c[0] for p, c in cur.items()}
+        times: dict[str, float] = {p: c[1] for p, c in cur.items()}
         for name, c in eff.items():
             fresh[name] = c[0]
+            times[name] = c[1]
             # an effective value (MAP, SBP ...) taken from a measured one is new when any of
             # its possible sources is; otherwise its limits and trends would never see it
             if name not in new and not new.isdisjoint(EFFECTIVE_SOURCES[name]):
@@ -398,11 +418,16 @@ class Processor:
         for d in derived:
             param, value = d[0], d[1]
             fresh[param] = value
+            # a value derived from an output measurement belongs to that measurement's time
+            dt = _output_time(d[2]) if output_new else None
+            if dt is None:
+                dt = now
+            times[param] = dt
             last = stored.get(param)
-            if (last is None or now - last[0] >= every
+            if (last is None or dt - last[0] >= every
                     or abs(value - last[1]) > band * abs(last[1])):
-                stored[param] = (now, value)
-                rows.append({"bed_id": bed_id, "param": param, "time": now, "value": value,
+                stored[param] = (dt, value)
+                rows.append({"bed_id": bed_id, "param": param, "time": dt, "value": value,
                              "unit": DERIVED_UNITS[param], "inputs": inputs_json(d[2])})
                 n_stored += 1
         self.counters.derived_stored += n_stored
@@ -412,7 +437,8 @@ class Processor:
         new.intersection_update(fresh)
         if self.rules is not None:
             self._rule_events(self.rules.on_values(bed.key, now, fresh, frozenset(new),
-                                                   nonvalid, device))
+                                                   nonvalid, device,
+                                                   {p: times[p] for p in new if p in times}))
         if self.publish:
             body: dict[str, Any] = {
                 "v": 1, "time": iso(now), "values": {d[0]: d[1] for d in derived},
@@ -487,8 +513,11 @@ class Processor:
             self.counters.alarm_events += 1
             if not self.publish:
                 continue
+            word = getattr(self.rules, "phrase", None)
             self.out.publish.append((f"hemo/{unit}/{bed_name}/alarm",
-                                     {"v": 1, "event": {**ev.as_row(), "time": iso(ev.time)}},
+                                     {"v": 1, "event": {**ev.as_row(), "time": iso(ev.time),
+                                                        "phrase": word(ev.rule) if word
+                                                        else phrase(ev.rule)}},
                                      False))
             assert self.rules is not None       # events come only from the rules
             state = self.rules.alarm_state(ev.bed)
@@ -503,6 +532,17 @@ class Processor:
             self._retained_rejects.add(self._retained_key)
         self.out.rejected.append(reject_row(category, reason, topic, payload, rx, obs_index,
                                             device, seq, self.cfg.ingest.stored_raw_bytes))
+
+
+def _from_output(inputs: tuple[tuple[str, float], ...]) -> bool:
+    """The derived value has a cardiac output measurement (CO or SV) among its inputs."""
+    return any(p in OUTPUT_PARAMS for p, _ in inputs)
+
+
+def _output_time(inputs: tuple[tuple[str, float], ...]) -> float | None:
+    """Measurement time of the newest output measurement among the inputs, or None."""
+    ts = [t for p, t in inputs if p in OUTPUT_PARAMS]
+    return max(ts) if ts else None
 
 
 class _ObsEnvelope(BaseModel):

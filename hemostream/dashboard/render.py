@@ -18,6 +18,7 @@ from rich.panel import Panel
 from rich.table import Table
 from rich.text import Text
 
+from ..core.rules.phrases import phrase
 from .model import BedState, UnitView
 
 CAUTION = ("Secondary display and notification aid, not a medical device: confirm every "
@@ -154,7 +155,9 @@ def alarm_label(a: dict) -> Text:
     if a.get("category") == "technical":
         style += " italic"
     t = Text(f"{pr.upper()} ", style=style)
-    name = a.get("rule", "?")
+    # the phrase a nurse reads at a glance; the rule id stays in the data (older publishers
+    # send no phrase: it is looked up from the rule id)
+    name = a.get("phrase") or phrase(str(a.get("rule", "?")))
     if a.get("category") == "technical":
         name = f"technical: {name}"
     t.append(name, style=style)
@@ -353,7 +356,7 @@ def bed_screen(view: UnitView, scr: Screen, b: BedState, now: float, width: int,
     for ev in list(b.history)[-max(3, height // 4):][::-1]:
         ts = ev.get("time_s")
         hist.add_row(datetime.fromtimestamp(ts, timezone.utc).strftime("%H:%M:%S") if ts
-                     else "", f"{ev.get('rule')} {ev.get('transition')}", ev.get("by") or "")
+                     else "", f"{ev.get('phrase') or phrase(str(ev.get('rule')))} {ev.get('transition')}", ev.get("by") or "")
     notes = Table(box=None, header_style="bold", pad_edge=False, expand=True)
     for col in ("time", "note"):
         notes.add_column(col, no_wrap=True, overflow="ellipsis")

@@ -29,6 +29,7 @@ from .panels import PANEL_KEYS, PANELS, panel_data
 from .periods import PRIORITIES, time_in_state
 from .queries import BedData, BedInfo
 from .text import hhmmss, span_text, when
+from ..core.rules.phrases import phrase
 
 
 CSS = """
@@ -188,12 +189,12 @@ def bed_page(bd: BedData, lim: LimitsSource, t0: float, t1: float, end: float, *
                             + f" (after {span_text(t - p.start)})" for t, by in p.acks) or "-"
             pri = _pri(p.raised_priority) + (
                 f" to {_pri(p.peak_priority)}" if p.peak_priority != p.raised_priority else "")
-            rows.append([escape(p.rule), escape(p.category), pri, escape(when(p.start)),
+            rows.append([escape(phrase(p.rule)), escape(p.category), pri, escape(when(p.start)),
                          escape(when(p.end)) if p.end is not None else "still active",
                          escape(span_text(p.end_or(end) - p.start)), ack,
                          escape(p.clear_reason or ""), escape(p.message),
                          _fmt_num(p.value, 2)])
-        parts.append(_table(["rule", "category", "priority", "raised", "cleared", "lasted",
+        parts.append(_table(["alarm", "category", "priority", "raised", "cleared", "lasted",
                              "acknowledged", "ended by", "message", "value at raise"],
                             rows, {9}))
     else:

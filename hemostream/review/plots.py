@@ -34,6 +34,7 @@ from .panels import PanelData  # noqa: E402
 from .periods import AlarmPeriod, InfoEvent, state_segments  # noqa: E402
 from .svg import Figures, finish  # noqa: E402
 from .text import alarm_hover, fluid_text, hhmmss, note_hover, span_text, when  # noqa: E402
+from ..core.rules.phrases import phrase  # noqa: E402
 
 matplotlib.rcParams.update({
     "svg.fonttype": "none",          # text stays text: smaller, searchable, crisp
@@ -163,7 +164,7 @@ def _shade_alarms(ax, periods: list[AlarmPeriod], t0: float, t1: float, end: flo
                    zorder=0.5)
         hover[gid] = (f"{pri} priority alarm state {hhmmss(a)} to {hhmmss(b)} "
                       f"({span_text(b - a)})\n" + "\n".join(
-                          f"{p.rule} ({p.peak_priority}), raised {hhmmss(p.start)}"
+                          f"{phrase(p.rule)} ({p.peak_priority}), raised {hhmmss(p.start)}"
                           for p in who))
     return n, used
 
@@ -366,12 +367,13 @@ def timeline_figure(periods: list[AlarmPeriod], info: list[InfoEvent],
         if p.rule not in rules:
             rules.append(p.rule)
     rows = ["notes", "information"] + rules
+    labels = ["notes", "information"] + [phrase(r) for r in rules]
     fig, ax = _new_fig(1.0 + 0.28 * len(rows))
     hover: dict[str, str] = {}
     _time_axis(ax, t0, t1)
     ax.set_title("Alarms, notes and information", pad=4)
     ax.set_ylim(len(rows) - 0.5, -0.5)
-    ax.set_yticks(range(len(rows)), rows, fontsize=7.5)
+    ax.set_yticks(range(len(rows)), labels, fontsize=7.5)
     ax.grid(False, axis="y")
     n = 0
     for p in shown:

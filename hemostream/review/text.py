@@ -6,6 +6,7 @@ from datetime import datetime, timezone
 from typing import Any
 
 from ..core.processor import epoch
+from ..core.rules.phrases import phrase
 from .periods import AlarmPeriod, InfoEvent
 
 
@@ -39,7 +40,7 @@ def span_text(s: float) -> str:
 
 def alarm_hover(p: AlarmPeriod, end: float, pri: str | None = None) -> str:
     seg = p.end_or(end)
-    parts = [f"{p.rule} ({pri or p.peak_priority} priority, {p.category})",
+    parts = [f"{phrase(p.rule)} ({pri or p.peak_priority} priority, {p.category})",
              f"{when(p.start)} to {when(seg) if p.end is not None else 'still active at ' + when(seg)}"
              f" ({span_text(seg - p.start)})"]
     if p.message:

@@ -23,7 +23,7 @@ n) per timer) and never scans all beds.
 from __future__ import annotations
 
 import heapq
-from typing import Any
+from typing import Any, Mapping
 
 from ..alarms import CommandError, RuleEvent
 from .artifacts import ArtifactDetector
@@ -33,6 +33,7 @@ from .config import RulesConfig
 from .fluid import FluidChallenge
 from .limits import Limits
 from .patterns import Patterns
+from .phrases import phrase
 from .profile import PROFILE_TEXT, Profile, classify
 from .state import BedState, Shared
 from .technical import Technical
@@ -60,6 +61,8 @@ class RulesEngine:
         self.technical = Technical(sh, self.art)
         self.fluid = FluidChallenge(sh)
         self.profile = Profile(sh, self.trending)
+        #: configured pattern messages: the phrase of a rule the phrase table does not know
+        self._messages = {rid: p.message for rid, p in cfg.patterns.items() if p.message}
 
     # ================================================================== plumbing
 
@@ -85,8 +88,12 @@ class RulesEngine:
     # ================================================================== inputs
 
     def on_values(self, bed: str, t: float, fresh: dict[str, float], new: frozenset[str],
-                  nonvalid: dict[str, str], device: str) -> list[RuleEvent]:
-        """One accepted observation message, after derivations (see docs/rules.md)."""
+                  nonvalid: dict[str, str], device: str,
+                  times: Mapping[str, float] | None = None) -> list[RuleEvent]:
+        """One accepted observation message, after derivations (see docs/rules.md).
+
+        ``times``: measurement time of the new values where it differs from ``t`` (an
+        intermittent measurement is older than its message); missing names are at ``t``."""
         if not self.cfg.enabled:
             return []
         b = self._beds.get(bed) or self._bed(bed)
@@ -100,7 +107,7 @@ class RulesEngine:
         if b.art.sig_since or self.book.get(bed, ARTIFACT) is not None:
             ev += self.technical.artifact_alarm(b, t)
         changed = self.trending.feed(b, t, fresh, new, excluded)
-        self.fluid.on_values(b, t, fresh, new, excluded, ev)
+        self.fluid.on_values(b, t, fresh, new, excluded, ev, times)
         self.limits.evaluate(b, t, fresh, new, excluded, ev)
         self.patterns.evaluate(b, t, fresh, new, changed, excluded, ev)
         self.profile.on_values(b, t, fresh, new, changed, excluded, ev)
@@ -118,6 +125,8 @@ class RulesEngine:
                 tr = b.trends.get(p)
                 if tr is not None:
                     tr.reset()
+        if self.cfg.fluid_challenge.enabled:
+            self.fluid.note(self._bed(bed), t, kind, param)
         if kind in self.cfg.artifacts.note_kinds:
             b = self._bed(bed)
             chs = self.art.note(b.art, t, param, duration_s)
@@ -127,8 +136,12 @@ class RulesEngine:
                     tr.drop_since(t)
             if self.book.get(bed, ARTIFACT) is not None:
                 ev += self.technical.artifact_alarm(b, t)
-        elif kind == "fluid_bolus" and self.cfg.fluid_challenge.enabled:
-            ev += self.fluid.open(self._bed(bed), t, volume_ml, over_min)
+        elif kind == "fluid_bolus":
+            b = self._bed(bed)
+            over = self.cfg.fluid_challenge.default_over_min if over_min is None else over_min
+            b.fluid_until = max(b.fluid_until, t + float(over) * 60.0)
+            if self.cfg.fluid_challenge.enabled:
+                ev += self.fluid.open(b, t, volume_ml, over_min)
         return ev
 
     def on_admit(self, bed: str, t: float, limits: dict[str, dict[str, float]] | None = None,
@@ -197,9 +210,16 @@ class RulesEngine:
 
     # ================================================================== read-outs
 
-    def classify(self, levels: dict[str, float | None]) -> str | None:
+    def phrase(self, rule: str) -> str:
+        """The short phrase screens show for ``rule`` (see :mod:`.phrases`)."""
+        return phrase(rule, self._messages)
+
+    def _alarm_dicts(self, bed: str) -> list[dict[str, Any]]:
+        return [{**a.as_dict(), "phrase": self.phrase(a.rule)} for a in self.book.active(bed)]
+
+    def classify(self, levels: dict[str, float | None], cvp_rising: bool = False) -> str | None:
         """Profile read-out from levels of CVP, PAWP, CI and SVR (see :func:`.profile.classify`)."""
-        return classify(self.profile.ranges, levels)
+        return classify(self.profile.ranges, levels, cvp_rising)
 
     def bed_view(self, bed: str) -> dict[str, Any]:
         """Dashboard model of one bed (JSON-able)."""
@@ -208,7 +228,7 @@ class RulesEngine:
             return {"trends": {}, "alarms": [], "profile": None, "profile_text": None,
                     "fluid_challenge": None}
         return {"trends": self.trending.view(b),
-                "alarms": [a.as_dict() for a in self.book.active(bed)],
+                "alarms": self._alarm_dicts(bed),
                 "profile": b.profile,
                 "profile_text": PROFILE_TEXT.get(b.profile) if b.profile else None,
                 "fluid_challenge": dict(b.fc_last) if b.fc_last else None,
@@ -224,6 +244,6 @@ class RulesEngine:
 
     def alarm_state(self, bed: str) -> dict[str, Any]:
         """Current alarm state of the bed (retained on ``hemo/<unit>/<bed>/alarm``)."""
-        act = self.book.active(bed)
-        return {"alarms": [a.as_dict() for a in act], "count": len(act),
-                "highest": act[0].priority if act else None}
+        act = self._alarm_dicts(bed)
+        return {"alarms": act, "count": len(act),
+                "highest": act[0]["priority"] if act else None}

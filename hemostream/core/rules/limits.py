@@ -69,6 +69,10 @@ def default_limits() -> dict[str, LimitRule]:
         "CVP": L(high=18, high_priority="low", delay_s=60, hysteresis=1,
                  source=src + "; CVP 2-8 typical"),
         "PAP_MEAN": L(high=40, high_priority="low", delay_s=60, hysteresis=2, source=src),
+        # a wedge pressure is one intermittent reading: nothing to sustain, so no delay
+        "PAWP": L(high=18, high_priority="medium", delay_s=0, hysteresis=1,
+                  source="PAWP > 18 mm[Hg]: pulmonary congestion (Forrester JS et al., "
+                         "N Engl J Med 1976;295:1356, published); PAWP 6-12 typical"),
     }
 
 

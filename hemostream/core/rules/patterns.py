@@ -81,6 +81,10 @@ class PatternRule(BaseModel):
     latching: bool | None = None
     #: the text shown with the alarm
     message: str = ""
+    #: None: always evaluated. Otherwise the pattern does not start while a fluid bolus or
+    #: transfusion (a ``fluid_bolus`` note) runs and for this long after its end: filling
+    #: raises the filling pressures on purpose (an alarm already raised goes on)
+    quiet_after_fluid_s: Seconds | None = None
 
 
 def default_patterns() -> dict[str, PatternRule]:
@@ -88,15 +92,36 @@ def default_patterns() -> dict[str, PatternRule]:
     return {
         "right_heart_mismatch": P(
             description="CVP rising while cardiac output (CI, or CO without a body surface "
-                        "area) falls over the trend window: filling pressure backing up while "
-                        "output drops. Silent when CVP and output rise together (a "
-                        "preload-responsive patient being filled) or when only one moves.",
+                        "area) falls over the trend window and stroke volume does not rise: "
+                        "filling pressure backing up while the pump's output drops. Silent "
+                        "when CVP and output rise together (a preload-responsive patient "
+                        "being filled), when only one moves, when stroke volume rises (a "
+                        "refilling heart whose output dips only because the rate settles), "
+                        "and does not start while a fluid bolus or transfusion is in effect "
+                        "(quiet_after_fluid_s).",
             source="Frank-Starling: Patterson SW, Starling EH, J Physiol 1914;48:357; "
                    "venous return and cardiac function curves: Guyton AC, Physiol Rev "
                    "1955;35:123 (published, qualitative); thresholds: project choice",
             message="possible right-heart / pump mismatch",
-            terms=[T(param="CVP", trend="rising"), T(param=["CI", "CO"], trend="falling")],
-            priority="medium", delay_s=15, clear_delay_s=60),
+            terms=[T(param="CVP", trend="rising"), T(param=["CI", "CO"], trend="falling"),
+                   T(param=["SVI", "SV"], trend="not_rising")],
+            priority="medium", delay_s=15, clear_delay_s=60, quiet_after_fluid_s=600),
+        "left_heart_mismatch": P(
+            description="Left-sided filling pressure (PA diastolic, the continuous stand-in "
+                        "for the wedge pressure; or PAWP where it is trended) rising while "
+                        "cardiac output falls and stroke volume does not rise: the left "
+                        "ventricle backing up. The counterpart of right_heart_mismatch; the "
+                        "PAWP_high limit covers the level.",
+            source="Frank-Starling (Patterson SW, Starling EH, J Physiol 1914;48:357); PA "
+                   "diastolic tracks PAWP when pulmonary vascular resistance is normal "
+                   "(critical care texts, Marino, The ICU Book - from memory); "
+                   "Forrester JS et al., N Engl J Med 1976;295:1356 (PAWP > 18 mm[Hg] "
+                   "congestion, CI < 2.2 hypoperfusion); thresholds: project choice",
+            message="possible left-heart failure",
+            terms=[T(param=["PAP_DIA", "PAWP"], trend="rising"),
+                   T(param=["CI", "CO"], trend="falling"),
+                   T(param=["SVI", "SV"], trend="not_rising")],
+            priority="medium", delay_s=15, clear_delay_s=60, quiet_after_fluid_s=600),
         "shock_index_high": P(
             description="Shock index (HR / systolic pressure) at or above the warning level "
                         "0.9 (low priority), at or above 1.0 (medium priority), sustained.",
@@ -133,14 +158,18 @@ def default_patterns() -> dict[str, PatternRule]:
                    T(param="HR", trend="rising")],
             priority="medium", delay_s=60, clear_delay_s=60),
         "vasodilation_pattern": P(
-            description="SVR and MAP falling while cardiac output is held or rising: "
-                        "vessels relaxing.",
+            description="SVR falling while the reflex answers (HR rising, cardiac output held "
+                        "or rising) and MAP is not rising, sustained for 5 minutes: vessels "
+                        "relaxing, found in the compensated phase before MAP falls.",
             source="MAP - CVP = CO x SVR (hydraulic analogue of Ohm's law), critical care "
-                   "texts (Marino, The ICU Book) - from memory",
+                   "texts (Marino, The ICU Book) - from memory; baroreflex answer to a fall "
+                   "in resistance: common practice; 5-minute hold: project choice (the "
+                   "slow swings of a stable adult's SVR and output align for 3-4 minutes at "
+                   "most on the simulators)",
             message="pattern consistent with vasodilation",
-            terms=[T(param="SVR", trend="falling"), T(param="MAP", trend="falling"),
-                   T(param=["CI", "CO"], trend="not_falling")],
-            priority="low", delay_s=60, clear_delay_s=60),
+            terms=[T(param="SVR", trend="falling"), T(param=["CI", "CO"], trend="not_falling"),
+                   T(param="MAP", trend="not_rising"), T(param="HR", trend="rising")],
+            priority="low", delay_s=300, clear_delay_s=60),
     }
 
 
@@ -315,6 +344,9 @@ class Patterns:
                     break
                 infos += tinfo
                 level = k + 2
+        quiet = pat.cfg.quiet_after_fluid_s
+        if level and quiet is not None and not raised and t < b.fluid_until + quiet:
+            level = 0                 # filling on purpose: the pattern does not start
         if level == 0 and (c is None or (c.level == 0 and not c.raised)):
             return
         first = infos[0] if infos else {}

@@ -59,8 +59,13 @@ class ProfileConfig(BaseModel):
 # --------------------------------------------------------------------------- read-out
 
 
+#: CVP / PAWP above this: right-sided filling backing up (right-ventricular involvement;
+#: Lopez-Sendon J et al., Circulation 1981;64:515, RA/PCWP >= 0.8 - from memory)
+RIGHT_LEFT_RATIO = 0.8
+
+
 def classify(ranges: Mapping[str, tuple[float, float]],
-             levels: Mapping[str, float | None]) -> str | None:
+             levels: Mapping[str, float | None], cvp_rising: bool = False) -> str | None:
     """Profile read-out from levels of CVP, PAWP, CI and SVR (None where absent), against
     ``ranges`` (parameter -> (low, high) of the typical range).
 
@@ -69,6 +74,11 @@ def classify(ranges: Mapping[str, tuple[float, float]],
     obstructive (high CVP with PAWP not high, low CI, high SVR), distributive (low SVR,
     CI normal or high). Without PAWP a high CVP with low CI and high SVR cannot tell
     cardiogenic from obstructive and says so.
+
+    Never hypovolemic when the CVP is high, rising (``cvp_rising``, its trend) or high
+    relative to the PAWP (CVP / PAWP above :data:`RIGHT_LEFT_RATIO`): a venous side that fills
+    while output falls is a pump that fails, and "hypovolemic" would invite fluid that can
+    harm. Such levels get no read-out unless a high filling pressure names one.
     """
     ci, svr = levels.get("CI"), levels.get("SVR")
     if ci is None or svr is None:
@@ -87,7 +97,10 @@ def classify(ranges: Mapping[str, tuple[float, float]],
         return "distributive"
     if c_ci == "low" and c_svr == "high":
         fill = [x for x in (c_cvp, c_pawp) if x is not None]
-        if fill and "low" in fill and "high" not in fill:
+        right_backing_up = cvp_rising or (
+            cvp is not None and pawp is not None and pawp > 0
+            and cvp / pawp > RIGHT_LEFT_RATIO)
+        if fill and "low" in fill and "high" not in fill and not right_backing_up:
             return "hypovolemic"
         if c_pawp == "high":
             return "cardiogenic"
@@ -119,7 +132,7 @@ class Profile:
                   excluded: frozenset[str], ev: list[RuleEvent]) -> None:
         levels = {p: self.trending.robust_level(b, p, t, fresh, excluded)
                   for p in PROFILE_INPUTS}
-        cls = classify(self.ranges, levels)
+        cls = classify(self.ranges, levels, self._cvp_rising(b, t))
         if cls == b.profile:
             b.cand = None
             b.cand_since = None
@@ -132,6 +145,14 @@ class Profile:
                 self.sh.schedule(t + self.cfg.profile.hold_s, "profile", b.key, "")
                 return
         self._outcome(b, t, levels, ev)
+
+    def _cvp_rising(self, b: BedState, t: float) -> bool:
+        tr = b.trends.get("CVP")
+        r = tr.reading(t) if tr is not None else None
+        if r is None or "CVP" not in self.trending.bands:
+            return False
+        sa, sr = self.trending.bands["CVP"]
+        return r.direction(sa, sr, self.cfg.trends.min_tau) == "rising"
 
     def on_timer(self, b: BedState, now: float, ev: list[RuleEvent]) -> None:
         if b.cand_since is None or now - b.last_t > self.cfg.alarms.tick_maturation_max_age_s:

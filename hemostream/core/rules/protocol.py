@@ -8,7 +8,7 @@ events it caused, in order.
 
 from __future__ import annotations
 
-from typing import Any, Protocol, runtime_checkable
+from typing import Any, Mapping, Protocol, runtime_checkable
 
 from ..alarms import RuleEvent
 
@@ -18,9 +18,11 @@ __all__ = ["RulesLayer"]
 @runtime_checkable
 class RulesLayer(Protocol):
     def on_values(self, bed: str, t: float, fresh: dict[str, float], new: frozenset[str],
-                  nonvalid: dict[str, str], device: str) -> list[RuleEvent]:
+                  nonvalid: dict[str, str], device: str,
+                  times: Mapping[str, float] | None = None) -> list[RuleEvent]:
         """One accepted observation message after derivations: ``fresh`` the current valid
-        values, ``new`` the names this message brought, ``nonvalid`` name -> status."""
+        values, ``new`` the names this message brought, ``nonvalid`` name -> status,
+        ``times`` the measurement time of new values (default: ``t``)."""
         ...
 
     def on_note(self, bed: str, t: float, kind: str, volume_ml: float | None = None,

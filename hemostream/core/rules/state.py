@@ -53,7 +53,7 @@ class BedState:
     __slots__ = ("key", "trends", "conds", "overrides", "limits", "art", "last_t",
                  "last_seen", "param_device", "feed_sched", "silent", "ignored",
                  "dev_last", "dev_sched", "dev_silent", "dev_ignored", "notvalid",
-                 "fc", "fc_last", "profile", "cand", "cand_since", "cand_levels")
+                 "fc", "fc_last", "fc_meas", "fluid_until", "profile", "cand", "cand_since", "cand_levels")
 
     def __init__(self, key: str, limits: "list[Limit]") -> None:
         self.key = key
@@ -77,6 +77,10 @@ class BedState:
         # fluid challenge
         self.fc: Eval | None = None
         self.fc_last: dict | None = None
+        #: latest measurement (measurement time, value) of each fluid-challenge parameter
+        self.fc_meas: dict[str, tuple[float, float]] = {}
+        #: patterns: end of the latest fluid bolus or transfusion (from its note)
+        self.fluid_until = NINF
         # profile
         self.profile: str | None = None
         self.cand: str | None = None

@@ -45,6 +45,7 @@ def _default_trend_params() -> dict[str, TrendParam]:
         "SBP": a(steady_abs=8.0),           # mm[Hg]
         "CVP": a(steady_abs=0.6, step_reset=3.0),        # mm[Hg]
         "PAP_MEAN": a(steady_abs=3.0, step_reset=6.0),   # mm[Hg]
+        "PAP_DIA": a(steady_abs=2.0, step_reset=6.0),    # mm[Hg]
         "PAWP": a(steady_abs=2.0),          # mm[Hg]
         "CO": a(steady_abs=0.15, steady_rel=0.04),   # L/min, or 4 % of the level
         "CI": a(steady_abs=0.08, steady_rel=0.04),   # L/min/m2
