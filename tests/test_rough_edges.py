@@ -1,0 +1,71 @@
+"""The rough edges a walkthrough of every command found, each driven as a user runs it."""
+
+from __future__ import annotations
+
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parent.parent
+
+
+def hemostream(*args: str, timeout: float = 120, cwd: Path | None = None,
+               check_rc: int | None = None) -> subprocess.CompletedProcess:
+    p = subprocess.run([sys.executable, "-m", "hemostream.app.cli", *args], cwd=cwd or ROOT,
+                       capture_output=True, text=True, timeout=timeout)
+    if check_rc is not None:
+        assert p.returncode == check_rc, (p.returncode, p.stdout[-2000:], p.stderr[-2000:])
+    return p
+
+
+def start(*args: str) -> subprocess.Popen:
+    return subprocess.Popen([sys.executable, "-m", "hemostream.app.cli", *args], cwd=ROOT,
+                            stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
+
+
+def read_until(p: subprocess.Popen, needle: str, seconds: float) -> str:
+    """Lines of ``p``'s output until one holds ``needle`` (fails after ``seconds``)."""
+    seen = []
+    end = time.monotonic() + seconds
+    os.set_blocking(p.stdout.fileno(), False)
+    while time.monotonic() < end:
+        line = p.stdout.readline()
+        if line:
+            seen.append(line)
+            if needle in line:
+                return "".join(seen)
+        else:
+            time.sleep(0.05)
+    raise AssertionError(f"{needle!r} not seen in {seconds} s:\n" + "".join(seen))
+
+
+# --------------------------------------------------------------- 1. demo without its broker
+
+@pytest.mark.parametrize("sig", [signal.SIGINT, signal.SIGTERM])
+def test_demo_without_broker_says_so_and_ends_on_signal(tmp_path, sig):
+    p = start("demo", "--broker", "mqtt://127.0.0.1:1", "--plain", "--every", "0.5",
+              "--db", f"sqlite:///{tmp_path}/d.db")
+    try:
+        read_until(p, "waiting for the broker at mqtt://127.0.0.1:1: not connected", 30)
+        p.send_signal(sig)
+        t0 = time.monotonic()
+        p.wait(timeout=5)
+        assert time.monotonic() - t0 < 3.0
+    finally:
+        if p.poll() is None:
+            p.kill()
+            p.wait()
+
+
+def test_demo_without_broker_ends_after_its_duration(tmp_path):
+    t0 = time.monotonic()
+    r = hemostream("demo", "--broker", "mqtt://127.0.0.1:1", "--plain", "--duration", "2",
+                   "--every", "0.5", "--db", f"sqlite:///{tmp_path}/d.db", timeout=60)
+    assert time.monotonic() - t0 < 30
+    assert r.returncode == 1
+    assert "no connection to the broker at mqtt://127.0.0.1:1" in r.stderr
