@@ -69,3 +69,25 @@ def test_demo_without_broker_ends_after_its_duration(tmp_path):
     assert time.monotonic() - t0 < 30
     assert r.returncode == 1
     assert "no connection to the broker at mqtt://127.0.0.1:1" in r.stderr
+
+
+# --------------------------------------------------------------- 2. the same file twice
+
+EXAMPLE = ROOT / "simulators" / "recordings" / "example-ward.jsonl"
+
+
+def _counts(db: Path) -> dict[str, int]:
+    import sqlite3
+    with sqlite3.connect(db) as c:
+        return {t: c.execute(f"select count(*) from {t}").fetchone()[0]
+                for t in ("messages", "observations", "derived", "alarm_events")}
+
+
+def test_replaying_a_file_twice_stores_nothing_twice(tmp_path):
+    db = tmp_path / "w.db"
+    hemostream("replay", str(EXAMPLE), "--db", f"sqlite:///{db}", check_rc=0)
+    first = _counts(db)
+    assert first["messages"] > 1000
+    r = hemostream("replay", str(EXAMPLE), "--db", f"sqlite:///{db}", check_rc=0)
+    assert _counts(db) == first
+    assert "already in the database" in r.stdout

@@ -104,6 +104,9 @@ def cmd_replay(args) -> int:
     out.print(f"  rejected {summary.rejected_total}"
               + "".join(f"\n    {k}: {v}" for k, v in summary.rejected.items()))
     out.print(f"  {summary.seconds:.2f} s, {summary.messages_per_s:,.0f} lines/s")
+    if summary.duplicates:
+        out.print(f"  {summary.duplicates} message(s) were already in the database (or came "
+                  "twice) and were not stored again")
     out.print(f"  see them with: hemostream query rejected --db {summary.db_url}"
               if summary.rejected_total else
               f"  see them with: hemostream query derived --db {summary.db_url}")
