@@ -91,3 +91,50 @@ def test_replaying_a_file_twice_stores_nothing_twice(tmp_path):
     r = hemostream("replay", str(EXAMPLE), "--db", f"sqlite:///{db}", check_rc=0)
     assert _counts(db) == first
     assert "already in the database" in r.stdout
+
+
+# --------------------------------------------------------------- 3. one number format
+
+def test_alarm_list_shows_current_value_with_unit_or_words():
+    from rich.console import Console
+    from hemostream.dashboard import Screen, UnitView, unit_screen
+    t = 1796112000.0
+    iso = "2026-12-01T08:00:00Z"
+    v = UnitView()
+    v.apply("hemo/SDU7/bed-01/derived", {"v": 1, "time": iso, "values": {"SI": 0.95},
+                                         "measured": {"CVP": [6.0, iso], "HR": [110, iso]}})
+    v.apply("hemo/SDU7/bed-01/alarm", {"v": 1, "time": iso, "state": {"alarms": [
+        {"id": "a1", "rule": "shock_index_high", "priority": "low", "since": t - 60,
+         "value": 0.9261, "message": "shock index high", "category": "physiological",
+         "details": {"terms": [{"param": "SI", "value": 0.9261, "at_least": 0.9}]}},
+        {"id": "a2", "rule": "right_heart_mismatch", "priority": "medium", "since": t - 30,
+         "value": 8.17, "category": "physiological", "message": "pump mismatch",
+         "details": {"terms": [{"param": "CVP", "level": 8.17, "required": "rising",
+                                "slope_per_10min": -0.0817}]}},
+        {"id": "a3", "rule": "arterial_line_silent", "priority": "low", "since": t - 10,
+         "value": 719, "category": "technical", "message": "no data from the arterial line"},
+    ]}})
+    c = Console(width=160, height=40, record=True, force_terminal=True)
+    c.print(unit_screen(v, Screen(unit="SDU7", source="test"), t + 1, 160, 40))
+    text = c.export_text()
+    assert "SI 0.95" in text                      # the current value, not 0.926 at raise
+    assert "CVP 6 mm[Hg] rising" in text
+    assert "no data from the arterial line" in text
+    assert "719" not in text and "-0.0817" not in text and "0.926" not in text
+    assert "CVP 6" in text and "CVP 6.0" not in text
+
+
+def test_demo_summary_and_report_use_the_tile_formats(tmp_path):
+    db = tmp_path / "w.db"
+    r = hemostream("demo", "--plain", "--duration", "60", "--speed", "60", "--every", "0.5",
+                   "--db", f"sqlite:///{db}", check_rc=0, timeout=120)
+    import re
+    assert re.search(r"\bCVP \d+(\s|$)", r.stdout), r.stdout[-1500:]
+    assert not re.search(r"\bCVP \d+\.\d\d\b", r.stdout)
+    hemostream("replay", str(EXAMPLE), "--db", f"sqlite:///{tmp_path}/r.db", check_rc=0)
+    out = tmp_path / "r.html"
+    hemostream("report", "--db", f"sqlite:///{tmp_path}/r.db", "--bed", "SDU4/bed-02",
+               "--out", str(out), check_rc=0)
+    html = out.read_text()
+    assert "SI 0.93" in html                      # the alarm's value, with the SI format
+    assert not re.search(r"<td[^>]*>\d+\.\d\d</td><td[^>]*>mm\[Hg\]", html)

@@ -30,6 +30,7 @@ from rich.console import Console
 
 from .. import CAUTION
 from ..core.config import Config
+from ..core.display import fmt_value
 from ..core.wire import (bed_topic, command_body, encode, format_epoch, is_status_topic,
                          parse_time_or_none, split_topic, status_topic, topic)
 from ..dashboard import Dashboard, Screen, UnitView
@@ -158,7 +159,7 @@ class Summary:
                 mean = v.get("ABP_MEAN", v.get("NIBP_MEAN"))
                 if mean is not None:
                     v["MAP"] = mean
-            shown = " ".join(f"{p} {_fmt(v[p])}" for p in
+            shown = " ".join(f"{p} {fmt_value(p, v[p])}" for p in
                              ("HR", "MAP", "CVP", "CO", "CI", "SVR", "SI", "SPO2") if p in v)
             st = b["alarms"]
             alarms = ""
@@ -175,12 +176,6 @@ class Summary:
                        f"{h.get('stored')}, rejected {h.get('rejected_total')}, duplicates "
                        f"{h.get('duplicates')}, db write {h['db_write_ms']['last']:.1f} ms")
         return out
-
-
-def _fmt(v: Any) -> str:
-    if not isinstance(v, (int, float)):
-        return str(v)
-    return f"{v:.2f}" if abs(v) < 10 else f"{v:.0f}"
 
 
 async def _feed_inproc(broker: InprocBroker, lines: Iterable[dict], clock: ScaledClock,
