@@ -138,3 +138,36 @@ def test_demo_summary_and_report_use_the_tile_formats(tmp_path):
     html = out.read_text()
     assert "SI 0.93" in html                      # the alarm's value, with the SI format
     assert not re.search(r"<td[^>]*>\d+\.\d\d</td><td[^>]*>mm\[Hg\]", html)
+
+
+# --------------------------------------------------------------- 4. staleness
+
+def test_every_value_is_stale_by_its_own_rule_and_a_lagging_feed_warns():
+    from rich.console import Console
+    from hemostream.dashboard import Screen, UnitView, bed_screen, unit_screen
+    t = 1796112000.0
+
+    def iso(x):
+        from datetime import datetime, timezone
+        return datetime.fromtimestamp(x, timezone.utc).isoformat().replace("+00:00", "Z")
+    v = UnitView()
+    old = t - 57
+    # the last derived message: SI computed from HR and ABP measured 57 s ago
+    v.apply("hemo/SDU7/bed-01/derived", {
+        "v": 1, "time": iso(t - 5), "values": {"SI": 0.8, "MAP": 87.0},
+        "measured": {"HR": [96, iso(old)], "ABP_SYS": [120, iso(old)],
+                     "ABP_DIA": [70, iso(old)], "SPO2": [97, iso(old)]}})
+    scr = Screen(unit="SDU7", source="test", connected=True, lag_s=57.0)
+    c = Console(width=74, height=40, record=True, force_terminal=True)
+    c.print(unit_screen(v, scr, t, 74, 40))
+    text = c.export_text()
+    for label in ("HR 96 stale", "SpO2 97 stale", "SI 0.80 stale"):
+        assert label in text, text
+    assert "FEED LAGGING 57s" in text
+    b = v.beds["SDU7/bed-01"]
+    c = Console(width=160, height=40, record=True, force_terminal=True)
+    c.print(bed_screen(v, scr, b, t, 160, 40))
+    detail = c.export_text()
+    for p in ("SI", "MAP", "HR", "SPO2"):
+        line = next(x for x in detail.splitlines() if x.lstrip("│ ").startswith(p + " "))
+        assert "stale" in line, line

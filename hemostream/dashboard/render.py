@@ -30,6 +30,9 @@ PRIORITY_STYLE = {"high": "red", "medium": "yellow", "low": "cyan", "info": "whi
 ARROW = {"rising": "↑", "falling": "↓", "steady": "→"}
 SPARK = "▁▂▃▄▅▆▇█"
 TILE_HEIGHT = 8
+#: a feed whose newest message is older than this is shown as lagging (project choice: the
+#: shortest maximum age of a continuous value)
+LAG_WARN_S = 10.0
 TILE_MIN_WIDTH = 38
 
 # one number format and unit per parameter, shared with the demo summary and the report
@@ -226,9 +229,13 @@ def header(scr: Screen, view: UnitView, now: float) -> Text:
         if now > 0 else "--"
     conn = Text("connected", style="green") if scr.connected else \
         Text("DISCONNECTED", style="bold red reverse")
+    if scr.connected and scr.lag_s is not None and scr.lag_s > LAG_WARN_S:
+        # connected but nothing new: a warning, where a narrow screen does not cut it
+        conn = Text(f"FEED LAGGING {fmt_age(scr.lag_s)}", style="bold yellow reverse")
     t = Text.assemble(("hemostream ", "bold"), (f"unit {scr.unit}", "bold cyan"), "  ", clock,
-                      "  ", conn, f"  {len(view.beds)} beds  {scr.rate:.0f} msg/s")
-    if scr.lag_s is not None:
+                      "  ", conn)
+    t.append(f"  {len(view.beds)} beds  {scr.rate:.0f} msg/s")
+    if scr.lag_s is not None and scr.lag_s <= LAG_WARN_S:
         t.append(f"  lag {scr.lag_s:.1f}s")
     if scr.operator:
         t.append(f"  operator {scr.operator}", style="dim")
