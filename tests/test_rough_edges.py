@@ -171,3 +171,37 @@ def test_every_value_is_stale_by_its_own_rule_and_a_lagging_feed_warns():
     for p in ("SI", "MAP", "HR", "SPO2"):
         line = next(x for x in detail.splitlines() if x.lstrip("│ ").startswith(p + " "))
         assert "stale" in line, line
+
+
+# --------------------------------------------------------------- 5. a / p keys
+
+def test_a_and_p_act_on_the_highest_unacknowledged_alarm_once(tmp_path):
+    from rich.console import Console
+    from hemostream.dashboard import Dashboard, Screen, UnitView
+    t = 1796112000.0
+    v = UnitView()
+
+    def state(acked_high: bool) -> None:
+        v.apply("hemo/SDU7/bed-01/alarm", {"v": 1, "time": "2026-12-01T08:00:00Z",
+                                           "state": {"alarms": [
+            {"id": "hyp#1", "rule": "hypotension", "priority": "high", "since": t - 90,
+             "acknowledged": acked_high},
+            {"id": "lo#1", "rule": "low_output", "priority": "medium", "since": t - 30,
+             "acknowledged": False},
+            {"id": "si#1", "rule": "shock_index_high", "priority": "low", "since": t - 10,
+             "acknowledged": False}]}})
+    state(acked_high=True)
+    sent = []
+    c = Console(width=120, height=40, record=True, force_terminal=True)
+    d = Dashboard(v, Screen(unit="SDU7", source="test", operator="RN K. Obi"),
+                  send_command=lambda *cmd: sent.append(cmd), clock=lambda: t, console=c)
+    d.press("a")
+    assert sent == [("SDU7/bed-01", "acknowledge", "lo#1")]    # not the acknowledged one
+    c.print(d.render())
+    assert "acknowledgement of low_output (medium) on bed-01 sent" in c.export_text()
+    d.press("a")                                    # before the service confirmed it
+    assert len(sent) == 1
+    c.print(d.render())
+    assert "already sent" in c.export_text()
+    d.press("p")
+    assert sent[-1] == ("SDU7/bed-01", "pause_audio", "lo#1")
