@@ -205,3 +205,29 @@ def test_a_and_p_act_on_the_highest_unacknowledged_alarm_once(tmp_path):
     assert "already sent" in c.export_text()
     d.press("p")
     assert sent[-1] == ("SDU7/bed-01", "pause_audio", "lo#1")
+
+
+# --------------------------------------------------------------- 6. event order
+
+def test_no_alarm_event_before_its_raise_and_no_negative_durations(tmp_path):
+    import re
+    import sqlite3
+    db = tmp_path / "d.db"
+    # fast: a feed silence is raised on a clock tick, and its end is seen on a measurement
+    # that was timed a little earlier
+    hemostream("demo", "--plain", "--speed", "100", "--duration", "2400", "--every", "30",
+               "--db", f"sqlite:///{db}", check_rc=0, timeout=200)
+    with sqlite3.connect(db) as c:
+        assert c.execute("select count(*) from alarm_events where category='technical'"
+                         ).fetchone()[0] > 0
+        bad = c.execute("""select a.alarm_id, a.time, b.time, b.transition
+                           from alarm_events a join alarm_events b on a.alarm_id = b.alarm_id
+                           where a.transition = 'raised' and b.time < a.time""").fetchall()
+        unit = c.execute("select unit from beds limit 1").fetchone()[0]
+    assert bad == []
+    out = tmp_path / "u.html"
+    hemostream("report", "--db", f"sqlite:///{db}", "--unit", unit, "--out", str(out),
+               check_rc=0, timeout=200)
+    html = "".join(p.read_text() for p in tmp_path.glob("*.html"))
+    assert not re.search(r">\s*-\d+(\.\d+)? ?(s|min|h)\b", html)
+    assert "alarm-hours -" not in html
