@@ -231,3 +231,37 @@ def test_no_alarm_event_before_its_raise_and_no_negative_durations(tmp_path):
     html = "".join(p.read_text() for p in tmp_path.glob("*.html"))
     assert not re.search(r">\s*-\d+(\.\d+)? ?(s|min|h)\b", html)
     assert "alarm-hours -" not in html
+
+
+# --------------------------------------------------------------- 7. errors, not tracebacks
+
+@pytest.mark.parametrize("args,names,accepted", [
+    (["demo", "--speed", "0", "--plain"], "--speed", "above 0"),
+    (["demo", "--broker", "http://x", "--plain"], "--broker", "mqtt://host:port"),
+    (["demo", "--scenario", "nosuch", "--plain"], "--scenario", "shipped"),
+    (["demo", "--duration", "soon", "--plain"], "--duration", "10m"),
+    (["simulate", "--scenario", "stable", "--duration", "10s", "--quiet", "--publish",
+      "http://x"], "--publish", "mqtt://host:port"),
+    (["report", "--db", "sqlite:///{db}", "--bed", "SDU4/bed-02", "--out", "/proc/x.html"],
+     "--out", "writable"),
+    (["report", "--db", "sqlite:///{db}", "--bed", "SDU4/bed-02", "--out", "x.pdf"],
+     "--out", ".html"),
+    (["query", "derived", "--db", "sqlite:///{db}", "--since", "yesterday"], "--since",
+     "RFC 3339"),
+    (["query", "derived", "--db", "sqlite:///{db}", "--limit", "-1"], "--limit", "0 or more"),
+])
+def test_a_wrong_argument_is_a_one_line_error(tmp_path_factory, args, names, accepted):
+    base = tmp_path_factory.getbasetemp() / "errors"
+    db = base / "w.db"
+    if not db.exists():
+        base.mkdir(exist_ok=True)
+        hemostream("replay", str(EXAMPLE), "--db", f"sqlite:///{db}", check_rc=0)
+    args = [a.replace("{db}", str(db)) for a in args]
+    if args[0] == "demo":
+        args += ["--db", f"sqlite:///{tmp_path_factory.mktemp('d')}/d.db"]
+    r = hemostream(*args, timeout=60, cwd=tmp_path_factory.mktemp("cwd"))
+    assert r.returncode != 0
+    assert "Traceback" not in r.stderr + r.stdout
+    errors = [x for x in r.stderr.splitlines() if "error" in x]
+    assert len(errors) == 1, r.stderr
+    assert names in errors[0] and accepted in errors[0], errors[0]

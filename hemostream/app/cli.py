@@ -28,7 +28,7 @@ from ..core.config import Config
 from ..core.redact import RedactingFilter
 from ..core.wire import ID_RE, command_body, encode, topic
 from ..live.health import status_payload
-from ..live.mqtt import BrokerSettingsError, MqttTransport
+from ..live.mqtt import BrokerSettingsError, MqttTransport, parse_broker_url
 from ..live.publish import publish_recording_lines
 from ..live.service import Service, status_topic
 from ..live.transport import TransportError
@@ -37,7 +37,7 @@ from ..intake.hl7.mllp import Hl7ServiceIntake
 from ..replay import replay_file
 from ..review.cli import add_parsers as add_review_parsers
 from ..store import StoreError, open_engine
-from .demo import run_demo
+from .demo import demo_lines, run_demo
 from .watch import run_watch
 
 try:
@@ -64,6 +64,48 @@ def setup_logging(level: str) -> None:
     # paho logs packet summaries (topics, sizes) at debug; never payloads
     logging.getLogger("hemostream.live.paho").setLevel(
         logging.DEBUG if level.upper() == "DEBUG" else logging.WARNING)
+
+
+# --------------------------------------------------------------------------- argument types
+
+def positive_float(text: str) -> float:
+    """An argparse type: a number above 0 (argparse names the option in its message)."""
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number above 0, got {text!r}") from None
+    if not v > 0 or v == float("inf"):
+        raise argparse.ArgumentTypeError(f"expected a number above 0, got {text!r}")
+    return v
+
+
+def non_negative_int(text: str) -> int:
+    try:
+        v = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number 0 or more, got {text!r}"
+                                         ) from None
+    if v < 0:
+        raise argparse.ArgumentTypeError(f"expected a whole number 0 or more, got {text!r}")
+    return v
+
+
+def duration(text: str) -> float:
+    """Seconds from 90, 90s, 10m, 2h or 1h30m (as ``simulate --duration`` takes them)."""
+    import re
+    s = text.strip().lower().replace(" ", "")
+    try:
+        v = float(s)
+    except ValueError:
+        m = re.fullmatch(r"(?:(\d+(?:\.\d+)?)h)?(?:(\d+(?:\.\d+)?)m)?(?:(\d+(?:\.\d+)?)s)?", s)
+        if not s or m is None or not any(m.groups()):
+            raise argparse.ArgumentTypeError(
+                f"expected a duration such as 90, 90s, 10m, 2h or 1h30m, got {text!r}") from None
+        h, mi, se = (float(g) if g else 0.0 for g in m.groups())
+        v = h * 3600 + mi * 60 + se
+    if not v > 0:
+        raise argparse.ArgumentTypeError(f"expected a duration above 0, got {text!r}")
+    return v
 
 
 # --------------------------------------------------------------------------- replay, query
@@ -241,6 +283,18 @@ def cmd_demo(args) -> int:
     if db.startswith("sqlite:///"):
         Path(db[len("sqlite:///"):]).parent.mkdir(parents=True, exist_ok=True)
     dashboard = not args.plain and sys.stdout.isatty() and sys.stdin.isatty()
+    if args.broker:
+        try:
+            parse_broker_url(args.broker)
+        except BrokerSettingsError as e:
+            print(f"error: --broker: {e}", file=sys.stderr)
+            return 2
+    if args.scenario:
+        try:
+            demo_lines(args.scenario, 1.0, args.seed)
+        except ValueError as e:
+            print(f"error: --scenario {args.scenario!r}: {e}", file=sys.stderr)
+            return 2
     result = asyncio.run(run_demo(cfg, db, speed=args.speed, duration_s=args.duration,
                                   scenario=args.scenario, seed=args.seed,
                                   broker_url=args.broker, every_s=args.every,
@@ -280,6 +334,11 @@ def cmd_watch(args) -> int:
 def publish_lines(lines, url: str, speed: float | None) -> int:
     """``simulate --publish``: stream recording lines to a broker at QoS 1 (the live shell)."""
     try:
+        parse_broker_url(url)
+    except BrokerSettingsError as e:
+        err.print(f"[red]error:[/] --publish: {e}", highlight=False)
+        return 2
+    try:
         s = asyncio.run(publish_recording_lines(lines, url, speed))
     except TransportError as e:
         err.print(f"[red]error:[/] {e}", highlight=False)
@@ -304,7 +363,7 @@ def add_store_parsers(sub) -> None:
                    "defaults, see configs/default.toml)")
     r.add_argument("--db", metavar="URL", help="database URL, e.g. sqlite:///ward.db or "
                    "postgresql+psycopg://127.0.0.1/test (default: the config's store.url)")
-    r.add_argument("--speed", type=float, metavar="N", help="pace the replay at N x real "
+    r.add_argument("--speed", type=positive_float, metavar="N", help="pace the replay at N x real "
                    "time (default: as fast as possible)")
     r.add_argument("--json", action="store_true", help="print the summary as JSON")
     r.add_argument("--quiet", action="store_true", help="no progress bar")
@@ -320,7 +379,7 @@ def add_store_parsers(sub) -> None:
     q.add_argument("--bed", metavar="BED", help="bed id, or UNIT/BED")
     q.add_argument("--param", metavar="P", help="parameter (or rule id for alarms)")
     q.add_argument("--since", metavar="TIME", help="RFC 3339 time, e.g. 2026-12-01T08:00:00Z")
-    q.add_argument("--limit", type=int, metavar="N", help="at most N rows")
+    q.add_argument("--limit", type=non_negative_int, metavar="N", help="at most N rows")
     q.add_argument("--format", choices=("table", "jsonl", "csv"), default="table")
     q.set_defaults(func=cmd_query)
 
@@ -379,14 +438,15 @@ def add_live_parsers(sub) -> None:
                    help="database URL (default: sqlite:///hemostream-demo.db)")
     d.add_argument("--broker", metavar="URL", help="run the demo through this real broker")
     d.add_argument("--config", metavar="FILE", help="TOML configuration (default: shipped)")
-    d.add_argument("--speed", type=float, default=10.0, metavar="N",
+    d.add_argument("--speed", type=positive_float, default=10.0, metavar="N",
                    help="N x real time (default 10; 1 for real time)")
-    d.add_argument("--duration", type=float, metavar="SECONDS",
-                   help="stop after this much of the scenario (default: all of it)")
+    d.add_argument("--duration", type=duration, metavar="D",
+                   help="stop after this much of the scenario, e.g. 600, 90s, 10m, 1h30m "
+                   "(default: all of it)")
     d.add_argument("--scenario", metavar="NAME", help="simulator scenario (default: the "
                    "demo ward)")
     d.add_argument("--seed", type=int, default=0)
-    d.add_argument("--every", type=float, default=2.0, metavar="SECONDS",
+    d.add_argument("--every", type=positive_float, default=2.0, metavar="SECONDS",
                    help="how often the summary is printed (wall clock)")
     d.add_argument("--plain", action="store_true", help="print the compact summary even "
                    "on a terminal (instead of the unit dashboard)")
