@@ -77,6 +77,76 @@ def with_overrides(cfg: Config, broker: str | None = None, db: str | None = None
     return cfg.model_copy(update=upd) if upd else cfg
 
 
+#: database URL schemes the store opens (SQLAlchemy dialects with their drivers installed)
+STORE_SCHEMES = ("sqlite", "postgresql")
+
+
+def _runtime_problems(data: dict, cfg: Config | None) -> list[str]:
+    """What ``run`` checks beyond the schema: the broker URL (scheme, host, numeric port) and
+    its security settings, the database URL's scheme, unit and bed ids given twice."""
+    from .live.mqtt import BrokerSettingsError, MqttTransport, parse_broker_url
+
+    out = []
+    broker = data.get("broker") if isinstance(data.get("broker"), dict) else {}
+    if isinstance(broker.get("url"), str):
+        try:
+            parse_broker_url(broker["url"])
+        except BrokerSettingsError as e:
+            out.append(f"broker.url: {e}")
+    store = data.get("store") if isinstance(data.get("store"), dict) else {}
+    url = store.get("url")
+    if isinstance(url, str):
+        scheme = url.split(":", 1)[0].split("+", 1)[0].lower() if ":" in url else ""
+        if scheme not in STORE_SCHEMES:
+            out.append(f"store.url: {url.split('@')[-1]!r} is not a database URL this store "
+                       "opens; expected sqlite:///FILE or postgresql+psycopg://HOST/DB")
+    units = data.get("units") if isinstance(data.get("units"), list) else []
+    seen_units: set = set()
+    for i, u in enumerate(units):
+        if not isinstance(u, dict):
+            continue
+        uid = u.get("id")
+        if isinstance(uid, str):
+            if uid in seen_units:
+                out.append(f"units[{i}].id: unit {uid!r} is given twice")
+            seen_units.add(uid)
+        beds = u.get("beds") if isinstance(u.get("beds"), list) else []
+        seen: set = set()
+        for j, b in enumerate(beds):
+            if isinstance(b, str) and b in seen:
+                out.append(f"units[{i}].beds[{j}]: bed {b!r} is given twice in unit {uid!r}")
+            seen.add(b)
+    if cfg is not None and not out:
+        try:                     # password source, TLS files: as the service's client does
+            MqttTransport(cfg.broker)
+        except BrokerSettingsError as e:
+            out.append(f"broker: {e}")
+    return out
+
+
+def check_config_file(path: str | Path) -> list[str]:
+    """Every problem of a configuration file at once (``check-config``): the schema's, and
+    what ``run`` would refuse (see :func:`_runtime_problems`); [] when it is usable."""
+    p = Path(path)
+    try:
+        data = tomllib.loads(p.read_text(encoding="utf-8"))
+    except OSError as e:
+        return [f"cannot read the file: {e.strerror or e}"]
+    except tomllib.TOMLDecodeError as e:
+        return [f"not valid TOML: {e}"]
+    cfg = None
+    try:
+        cfg = Config.model_validate(data)
+        problems: list[str] = []
+    except ValidationError as e:
+        problems = config_problems(e)
+    keys = {q.split(":", 1)[0] for q in problems}
+    for extra in _runtime_problems(data, cfg):
+        if extra.split(":", 1)[0] not in keys and extra not in problems:
+            problems.append(extra)
+    return problems
+
+
 def load_config(path: str | Path | None = None) -> Config:
     """Load a TOML configuration; ``None`` gives the built-in defaults."""
     if path is None:

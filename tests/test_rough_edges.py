@@ -265,3 +265,21 @@ def test_a_wrong_argument_is_a_one_line_error(tmp_path_factory, args, names, acc
     errors = [x for x in r.stderr.splitlines() if "error" in x]
     assert len(errors) == 1, r.stderr
     assert names in errors[0] and accepted in errors[0], errors[0]
+
+
+# --------------------------------------------------------------- 8. check-config
+
+def test_check_config_reports_every_problem_at_once(tmp_path):
+    f = tmp_path / "bad.toml"
+    f.write_text('[broker]\nurl = "mqtt://host:notaport"\n[store]\nurl = "ftp://x"\n'
+                 '[[units]]\nid = "SDU9"\nbeds = ["bed-01", "bed-01"]\n'
+                 '[ingest]\nmax_payload_bytes = -3\n')
+    r = hemostream("check-config", str(f))
+    assert r.returncode == 1
+    lines = r.stdout.splitlines()
+    for key, words in (("broker.url", "port must be a number"), ("store.url", "ftp://x"),
+                       ("units[0].beds[1]", "given twice"),
+                       ("ingest.max_payload_bytes", "greater than 0")):
+        assert any(key in x and words in x for x in lines), (key, r.stdout)
+    ok = hemostream("check-config", str(ROOT / "configs" / "default.toml"))
+    assert ok.returncode == 0 and ok.stdout.strip().endswith(": ok")

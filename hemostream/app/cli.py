@@ -23,7 +23,8 @@ from rich.console import Console
 from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
 
 from .. import CAUTION, query
-from ..config import ConfigError, load_config, load_for_command, with_overrides
+from ..config import (ConfigError, check_config_file, load_config, load_for_command,
+                      with_overrides)
 from ..core.config import Config
 from ..core.redact import RedactingFilter
 from ..core.wire import ID_RE, command_body, encode, topic
@@ -183,12 +184,12 @@ def cmd_query(args) -> int:
 def cmd_check_config(args) -> int:
     bad = 0
     for f in args.files:
-        try:
-            load_config(f)
-            print(f"{f}: ok")
-        except ConfigError as e:
+        problems = check_config_file(f)
+        if problems:
             bad += 1
-            print(str(e))
+            print("\n".join(f"{f}: {p}" for p in problems))
+        else:
+            print(f"{f}: ok")
     return 1 if bad else 0
 
 
