@@ -5,6 +5,7 @@ from __future__ import annotations
 import sys
 import tomllib
 from pathlib import Path
+from typing import Callable
 
 from pydantic import ValidationError
 
@@ -82,17 +83,9 @@ STORE_SCHEMES = ("sqlite", "postgresql")
 
 
 def _runtime_problems(data: dict, cfg: Config | None) -> list[str]:
-    """What ``run`` checks beyond the schema: the broker URL (scheme, host, numeric port) and
-    its security settings, the database URL's scheme, unit and bed ids given twice."""
-    from .live.mqtt import BrokerSettingsError, MqttTransport, parse_broker_url
-
+    """What ``run`` checks beyond the schema: the database URL's scheme, unit and bed ids
+    given twice (the broker's settings are checked by the caller's ``extra``)."""
     out = []
-    broker = data.get("broker") if isinstance(data.get("broker"), dict) else {}
-    if isinstance(broker.get("url"), str):
-        try:
-            parse_broker_url(broker["url"])
-        except BrokerSettingsError as e:
-            out.append(f"broker.url: {e}")
     store = data.get("store") if isinstance(data.get("store"), dict) else {}
     url = store.get("url")
     if isinstance(url, str):
@@ -116,15 +109,12 @@ def _runtime_problems(data: dict, cfg: Config | None) -> list[str]:
             if isinstance(b, str) and b in seen:
                 out.append(f"units[{i}].beds[{j}]: bed {b!r} is given twice in unit {uid!r}")
             seen.add(b)
-    if cfg is not None and not out:
-        try:                     # password source, TLS files: as the service's client does
-            MqttTransport(cfg.broker)
-        except BrokerSettingsError as e:
-            out.append(f"broker: {e}")
     return out
 
 
-def check_config_file(path: str | Path) -> list[str]:
+def check_config_file(path: str | Path,
+                      extra: Callable[[dict, Config | None], list[str]] | None = None
+                      ) -> list[str]:
     """Every problem of a configuration file at once (``check-config``): the schema's, and
     what ``run`` would refuse (see :func:`_runtime_problems`); [] when it is usable."""
     p = Path(path)
@@ -141,9 +131,10 @@ def check_config_file(path: str | Path) -> list[str]:
     except ValidationError as e:
         problems = config_problems(e)
     keys = {q.split(":", 1)[0] for q in problems}
-    for extra in _runtime_problems(data, cfg):
-        if extra.split(":", 1)[0] not in keys and extra not in problems:
-            problems.append(extra)
+    more = (extra(data, cfg) if extra is not None else []) + _runtime_problems(data, cfg)
+    for q in more:
+        if q.split(":", 1)[0] not in keys and q not in problems:
+            problems.append(q)
     return problems
 
 

@@ -283,3 +283,51 @@ def test_check_config_reports_every_problem_at_once(tmp_path):
         assert any(key in x and words in x for x in lines), (key, r.stdout)
     ok = hemostream("check-config", str(ROOT / "configs" / "default.toml"))
     assert ok.returncode == 0 and ok.stdout.strip().endswith(": ok")
+
+
+# --------------------------------------------------------------- 10. words and consistency
+
+from live_fixtures import broker  # noqa: E402,F401  (a real Mosquitto for watch)
+
+
+def test_caution_on_query_and_replay_output(tmp_path):
+    from hemostream import CAUTION
+    db = tmp_path / "w.db"
+    r = hemostream("replay", str(EXAMPLE), "--db", f"sqlite:///{db}", check_rc=0)
+    assert CAUTION in r.stdout.replace("\n", " ")
+    for fmt in ("table", "jsonl"):
+        q = hemostream("query", "alarms", "--db", f"sqlite:///{db}", "--format", fmt,
+                       check_rc=0)
+        assert CAUTION in q.stderr.replace("\n", " ")
+        if fmt == "jsonl":           # the data stays data
+            import json
+            [json.loads(x) for x in q.stdout.splitlines()]
+
+
+def test_watch_once_names_the_unit_warns_and_says_when_nothing_was_seen(broker, tmp_path):
+    from hemostream import CAUTION
+    cfg = tmp_path / "c.toml"
+    cfg.write_text(f'[broker]\nurl = "{broker.url()}"\n'
+                   '[[units]]\nid = "NOPE7"\nname = "Night ward seven"\nbeds = ["bed-01"]\n')
+    r = hemostream("watch", "--config", str(cfg), "--unit", "NOPE7", "--once", "1.5",
+                   timeout=60)
+    assert r.returncode == 1
+    assert "unit NOPE7 (Night ward seven)" in r.stdout
+    assert CAUTION in r.stdout
+    assert "no data from unit 'NOPE7' seen in 1.5 s" in r.stdout
+
+
+def test_ground_truth_markers_are_not_clinical_notes():
+    from rich.console import Console
+    from hemostream.dashboard import Screen, UnitView, bed_screen
+    v = UnitView()
+    t = "2026-12-01T08:00:00Z"
+    v.apply("hemo/SDU7/bed-01/derived", {"v": 1, "time": t, "values": {"SI": 0.7}})
+    v.apply("hemo/SDU7/bed-01/note", {"v": 1, "time": t, "kind": "deterioration_onset"})
+    v.apply("hemo/SDU7/bed-01/note", {"v": 1, "time": t, "kind": "fluid_bolus",
+                                      "volume_ml": 250})
+    c = Console(width=160, height=40, record=True)
+    c.print(bed_screen(v, Screen(unit="SDU7", source="t"), v.beds["SDU7/bed-01"],
+                       1796112000.0, 160, 40))
+    text = c.export_text()
+    assert "fluid_bolus 250 mL" in text and "deterioration_onset" not in text

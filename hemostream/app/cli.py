@@ -138,6 +138,7 @@ def cmd_replay(args) -> int:
         print(json.dumps(summary.as_dict(), indent=2))
         return 0
     out = Console(soft_wrap=True)
+    out.print(f"CAUTION: {CAUTION}", highlight=False)
     out.print(f"[bold]replayed[/] {summary.path} into {summary.db_url}")
     out.print(f"  lines {summary.lines}   messages stored {summary.messages}   "
               f"observations {summary.observations}   duplicates dropped {summary.duplicates}"
@@ -178,13 +179,31 @@ def cmd_query(args) -> int:
         return 0
     if args.format == "table":
         err.print(f"{n} row(s)")
+    err.print(f"CAUTION: {CAUTION}", highlight=False)   # stderr: jsonl and csv stay data
     return 0
+
+
+def broker_problems(data: dict, cfg: Config | None) -> list[str]:
+    """The broker settings as ``run`` checks them: URL (scheme, host, numeric port), then
+    the password source and TLS files."""
+    broker = data.get("broker") if isinstance(data.get("broker"), dict) else {}
+    if isinstance(broker.get("url"), str):
+        try:
+            parse_broker_url(broker["url"])
+        except BrokerSettingsError as e:
+            return [f"broker.url: {e}"]
+    if cfg is not None:
+        try:
+            MqttTransport(cfg.broker)
+        except BrokerSettingsError as e:
+            return [f"broker: {e}"]
+    return []
 
 
 def cmd_check_config(args) -> int:
     bad = 0
     for f in args.files:
-        problems = check_config_file(f)
+        problems = check_config_file(f, broker_problems)
         if problems:
             bad += 1
             print("\n".join(f"{f}: {p}" for p in problems))

@@ -421,7 +421,8 @@ def demo_dashboard(svc: Service, clock: Callable[[], float], loop: asyncio.Abstr
         return {"connected": svc.t.connected, "rate": h.get("messages_per_s", 0.0),
                 "lag_s": (h.get("lag_s") or {}).get("ingest_max")}
 
-    dash = Dashboard(model, Screen(unit="demo ward", source=source, operator=operator),
+    dash = Dashboard(model, Screen(unit="", source=source, operator=operator,
+                                   unit_names={u.id: u.name for u in svc.cfg.units if u.name}),
                      clock=clock, send_command=send_command, status=status, lock=lock,
                      console=console)
     return DemoDashboard(dash, model, lock)

@@ -19,6 +19,10 @@ from typing import Any
 from .derive import DERIVED_UNITS
 from .params import PARAMS
 
+#: note kinds that mark a simulator's ground truth (for compare and the report's figures),
+#: never shown among a bed's clinical notes
+GROUND_TRUTH_NOTES = frozenset({"deterioration_onset"})
+
 #: decimals per parameter; a parameter not listed is written with three significant digits
 DECIMALS: dict[str, int] = {
     "HR": 0, "PR": 0, "SPO2": 0, "RR": 0, "TEMP": 1, "CVP": 0, "PAWP": 0, "CO": 1, "CI": 1,

@@ -17,6 +17,7 @@ from typing import Any
 
 from ..core.alarms import PRIORITY_RANK
 from ..core.config import DEFAULT_MAX_AGE
+from ..core.display import GROUND_TRUTH_NOTES
 from ..core.wire import is_status_topic, split_topic
 from ..core.wire import parse_time_or_none  # None when missing or without an offset
 
@@ -139,6 +140,8 @@ class UnitView:
         elif kind == "alarm":
             self._alarm(self.bed(key), payload)
         elif kind == "note":
+            if payload.get("kind") in GROUND_TRUTH_NOTES:
+                return            # a simulator's answer key, not a clinical note
             b = self.bed(key)
             t = parse_time_or_none(payload.get("time"))
             b.notes.append({"time": t, "kind": payload.get("kind"),

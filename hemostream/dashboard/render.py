@@ -10,7 +10,7 @@ as current.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from datetime import datetime, timezone
 
 from rich.console import Group, RenderableType
@@ -50,6 +50,17 @@ class Screen:
     lag_s: float | None = None
     operator: str | None = None
     message: str = ""            # last key result, e.g. "acknowledged ..."
+    #: configured unit names by id; with ``unit`` empty the header names the units seen
+    unit_names: dict = field(default_factory=dict)
+
+
+def unit_label(scr: Screen, view: UnitView) -> str:
+    """The unit(s) as the header names them: id and configured name."""
+    ids = [scr.unit] if scr.unit else sorted({k.split("/", 1)[0] for k in view.beds})
+    if not ids:
+        return "(no unit seen yet)"
+    return ", ".join(f"{u} ({scr.unit_names[u]})" if scr.unit_names.get(u) else u
+                     for u in ids)
 
 
 def fmt_age(seconds: float) -> str:
@@ -232,7 +243,7 @@ def header(scr: Screen, view: UnitView, now: float) -> Text:
     if scr.connected and scr.lag_s is not None and scr.lag_s > LAG_WARN_S:
         # connected but nothing new: a warning, where a narrow screen does not cut it
         conn = Text(f"FEED LAGGING {fmt_age(scr.lag_s)}", style="bold yellow reverse")
-    t = Text.assemble(("hemostream ", "bold"), (f"unit {scr.unit}", "bold cyan"), "  ", clock,
+    t = Text.assemble(("hemostream ", "bold"), (f"unit {unit_label(scr, view)}", "bold cyan"), "  ", clock,
                       "  ", conn)
     t.append(f"  {len(view.beds)} beds  {scr.rate:.0f} msg/s")
     if scr.lag_s is not None and scr.lag_s <= LAG_WARN_S:

@@ -24,7 +24,7 @@ from typing import Any
 
 from . import CAUTION, COMPARE_CAUTION
 from . import plots
-from ..core.display import alarm_value, fmt_value
+from ..core.display import GROUND_TRUTH_NOTES, alarm_value, fmt_value
 from .limits import LimitsSource, limit_lines
 from .panels import PANEL_KEYS, PANELS, panel_data
 from .periods import PRIORITIES, time_in_state
@@ -140,6 +140,8 @@ def bed_page(bd: BedData, lim: LimitsSource, t0: float, t1: float, end: float, *
     cfg = lim.config
     shown = [p for p in bd.periods if p.start <= t1 and p.end_or(end) >= t0]
     notes_in = [n for n in bd.notes if t0 <= n["time"] <= t1]
+    # a simulator's ground-truth markers are shown on the figures, not as clinical notes
+    clinical_notes = [n for n in notes_in if n.get("kind") not in GROUND_TRUTH_NOTES]
     figs: dict[str, plots.Figures] = {}
     figs["alarms"] = plots.timeline_figure(shown, bd.info, notes_in, t0, t1, end, png=png)
     for spec in PANELS:
@@ -203,14 +205,14 @@ def bed_page(bd: BedData, lim: LimitsSource, t0: float, t1: float, end: float, *
 
     # notes
     parts.append('<h2 id="notes">Notes</h2>')
-    if notes_in:
+    if clinical_notes:
         parts.append(_table(
             ["time", "kind", "channel", "volume", "over", "duration", "by", "text"],
             [[escape(when(n["time"])), escape(n["kind"]), escape(n.get("param") or ""),
               f"{n['volume_ml']:g} mL" if n.get("volume_ml") is not None else "",
               f"{n['over_min']:g} min" if n.get("over_min") is not None else "",
               f"{n['duration_s']:g} s" if n.get("duration_s") is not None else "",
-              escape(n.get("by") or ""), escape(n.get("text") or "")] for n in notes_in]))
+              escape(n.get("by") or ""), escape(n.get("text") or "")] for n in clinical_notes]))
     else:
         parts.append("<p>No notes in this period.</p>")
 
