@@ -331,3 +331,38 @@ def test_ground_truth_markers_are_not_clinical_notes():
                        1796112000.0, 160, 40))
     text = c.export_text()
     assert "fluid_bolus 250 mL" in text and "deterioration_onset" not in text
+
+
+# --------------------------------------------------------------- 9. simulate --publish counts
+
+def test_simulate_publish_counts_acknowledged_and_says_what_failed(tmp_path):
+    from live_fixtures import require_broker
+    from mosquitto import Mosquitto
+    require_broker()
+    b = Mosquitto(tmp_path / "mosquitto").start()
+    try:
+        ok = hemostream("simulate", "--scenario", "stable", "--duration", "2m", "--quiet",
+                        "--publish", b.url(), "--speed", "1000", check_rc=0)
+        assert re_search(r"(\d+) of \1 messages acknowledged by the broker", ok.stderr)
+        p = subprocess.Popen([sys.executable, "-m", "hemostream.app.cli", "simulate",
+                              "--scenario", "stable", "--duration", "2h", "--quiet",
+                              "--publish", b.url(), "--speed", "200", "--give-up-after", "2"],
+                             cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                             text=True)
+        time.sleep(4)
+        b.stop()
+        _, stderr = p.communicate(timeout=60)
+    finally:
+        b.stop()
+    assert p.returncode == 1
+    m = re_search(r"(\d+) of (\d+) messages acknowledged by the broker, (\d+) NOT delivered",
+                  stderr)
+    assert m, stderr
+    acked, lines, failed = map(int, m.groups())
+    assert acked + failed == lines and acked < lines
+    assert "gave up" in stderr and "the rest of the recording was not sent" in stderr
+
+
+def re_search(pattern: str, text: str):
+    import re
+    return re.search(pattern, text)

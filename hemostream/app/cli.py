@@ -30,7 +30,7 @@ from ..core.redact import RedactingFilter
 from ..core.wire import ID_RE, command_body, encode, topic
 from ..live.health import status_payload
 from ..live.mqtt import BrokerSettingsError, MqttTransport, parse_broker_url
-from ..live.publish import publish_recording_lines
+from ..live.publish import PublishError, publish_recording_lines
 from ..live.service import Service, status_topic
 from ..live.transport import TransportError
 from ..intake.hl7 import cli as hl7_cli
@@ -351,21 +351,26 @@ def cmd_watch(args) -> int:
 
 # --------------------------------------------------------------------------- simulate
 
-def publish_lines(lines, url: str, speed: float | None) -> int:
-    """``simulate --publish``: stream recording lines to a broker at QoS 1 (the live shell)."""
+def publish_lines(lines, url: str, speed: float | None, give_up_s: float = 120.0) -> int:
+    """``simulate --publish``: stream recording lines to a broker at QoS 1 (the live shell);
+    counts what the broker acknowledged and says what was not delivered."""
     try:
         parse_broker_url(url)
     except BrokerSettingsError as e:
         err.print(f"[red]error:[/] --publish: {e}", highlight=False)
         return 2
     try:
-        s = asyncio.run(publish_recording_lines(lines, url, speed))
+        s = asyncio.run(publish_recording_lines(lines, url, speed,
+                                                max_seconds_down=give_up_s))
+    except PublishError as e:
+        err.print(f"[red]error:[/] {e}; gave up: {e.summary.words()}", highlight=False)
+        return 1
     except TransportError as e:
         err.print(f"[red]error:[/] {e}", highlight=False)
         return 1
     except KeyboardInterrupt:
         return 130
-    err.print(f"published {s.published} messages to {url}")
+    err.print(f"published to {url}: {s.words()}", highlight=False)
     return 0
 
 
