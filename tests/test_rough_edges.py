@@ -366,3 +366,11 @@ def test_simulate_publish_counts_acknowledged_and_says_what_failed(tmp_path):
 def re_search(pattern: str, text: str):
     import re
     return re.search(pattern, text)
+
+
+def test_compare_says_its_per_bed_day_figures_are_extrapolated():
+    data = ROOT / "tests" / "data"
+    r = hemostream("compare", str(data / "compare-hr.jsonl"), "--config",
+                   str(data / "compare-hr-high-120.toml"), "--quiet", check_rc=0)
+    line = next((x for x in r.stdout.splitlines() if "extrapolated" in x), "")
+    assert "per bed-day figures are extrapolated from" in line and "bed-hour" in line
