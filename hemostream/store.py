@@ -473,6 +473,8 @@ class Writer:
 
     def _isolate(self, rows: dict[str, list], why: str) -> None:
         per, rest = _by_message(rows)
+        for r in rest.pop("beds", ()):          # the rows every message refers to come first
+            self._one_row("beds", r)
         for msg_rows in per.values():
             try:
                 self._patiently(msg_rows)

@@ -23,7 +23,9 @@ Venous return is not a formula of its own: it is the flow through R_vr, and the 
 pressure settles where it equals the right heart's output (Guyton AC, Physiol Rev 1955;35:123).
 At steady state every flow in the ring is equal. The arterial baroreflex moves heart rate,
 contractility, systemic resistance and venous unstressed volume towards an arterial pressure
-set-point, each through a saturating (tanh) gain and a first-order lag.
+set-point, each through a saturating (tanh) gain and a first-order lag; the pressure it
+senses is the mean plus a share of the pulse pressure's departure from rest (baroreceptors
+respond to pulsatile stretch too), so a narrowing pulse pressure drives it as well.
 
 Integration: the five volumes are advanced with the linearly implicit (Rosenbrock) Euler
 method, ``(I - h J) dV = h f(V)``, with the analytic Jacobian ``J``; the reflex states are
@@ -113,7 +115,7 @@ class Circulation:
     (5.4, 7.0)
     >>> c.controls.bleed_ml_min = 100.0; c.run(300)      # 500 mL in 5 minutes
     >>> round(float(c.hr[0])), round(float(c.map[0])), round(float(c.blood_volume[0] - c.par["volume"][0]))
-    (80, 89, -495)
+    (81, 93, -495)
     """
 
     def __init__(self, beds: Patient | Params | Sequence[Patient | Params],
@@ -264,8 +266,10 @@ class Circulation:
         # retained infusions (colloid, blood) raise the volume that exchange restores
         self.volume_target += ctl.infusion_ml_min * ctl.infusion_retained * (h / 60.0)
         self.t += h
-        # baroreflex with the new arterial pressure
-        self._reflex((self.V[:, SA] - v0[:, SA]) * self._invC[:, SA], h)
+        # baroreflex with the new arterial pressure and the step's pulse pressure
+        self._reflex((self.V[:, SA] - v0[:, SA]) * self._invC[:, SA]
+                     + self.par["pp_weight"] * (self._sv[1] * self._invC[:, SA]
+                                                - self.par["pp0"]), h)
         self._dirty = True
 
     def _reflex(self, p_sa: np.ndarray, h: float) -> None:
@@ -461,7 +465,7 @@ class Circulation:
             p_sv = (v[:, 1] - v0_sv) / c_sv
             q_sys = (p_sa - p_sv) * g_sys
             open_ = pra > pc
-            q_vr = (p_sv - np.where(open_, pra, pc)) * g_vr
+            q_vr = np.maximum(p_sv - np.where(open_, pra, pc), 0.0) * g_vr
             # pump returns q_vr to the arteries: dV_sa = q_vr - q_sys, dV_sv = q_sys - q_vr
             f = q_vr - q_sys
             # implicit Euler on the single free mode (total volume is fixed)
@@ -472,7 +476,7 @@ class Circulation:
             v[:, 0] += dv
             v[:, 1] -= dv
         p_sv = (v[:, 1] - v0_sv) / c_sv
-        return (p_sv - np.where(pra > pc, pra, pc)) * g_vr * 0.06
+        return np.maximum(p_sv - np.where(pra > pc, pra, pc), 0.0) * g_vr * 0.06
 
 
 def _filling_time_factor(hr: np.ndarray) -> np.ndarray:

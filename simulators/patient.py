@@ -10,9 +10,10 @@ reflex at rest. The reference adult (70 kg, 175 cm, male) and the sources of eve
 listed below and in docs/simulators.md; each is marked published, common practice or from
 memory, as in the project's references.
 
-Extensive quantities (volumes, compliances, maximal stroke volumes) scale with the patient's
-blood volume relative to the reference adult's, resistances inversely, so pressures are
-size-independent and flows scale with size.
+Volumes and compliances scale with the patient's blood volume relative to the reference
+adult's; resting flow scales with body surface area (so the cardiac index is the patient's
+``co_factor`` times the reference adult's 2.93 L/min/m2) and resistances follow from the
+pressures and that flow.
 
 >>> p = Params.for_patient(Patient.reference())
 >>> round(p.volume), round(p.c_sa + p.c_sv)          # mL; mL/mm[Hg]
@@ -83,11 +84,16 @@ REFERENCE: dict[str, Any] = {
     # 3 s, contractility 8 s, resistance 6 s, venous unstressed volume 20 s. Gains are
     # effective (they stand for the cardiopulmonary and humoral responses too) and set so that
     # the hemorrhage classes of the ATLS manual come out (see docs).
-    "reflex_slope": 12.0,
-    "g_hr_up": 85.0, "g_hr_down": 6.0,
+    "reflex_slope": 10.0,
+    # the sensed pressure is MAP + pp_weight x (pulse pressure - resting pulse pressure):
+    # arterial baroreceptors fire with the pulsatile stretch as well as the mean (Chapleau MW,
+    # Abboud FM, Circ Res 1987;61:648, from memory), so a narrowing pulse pressure at a kept
+    # mean still drives the reflex
+    "pp_weight": 0.6,
+    "g_hr_up": 80.0, "g_hr_down": 6.0,
     "g_contr_up": 0.5, "g_contr_down": 0.05,
-    "g_svr_up": 1.0, "g_svr_down": 0.15,
-    "g_v0_up": 0.40, "g_v0_down": 0.05,
+    "g_svr_up": 0.9, "g_svr_down": 0.15,
+    "g_v0_up": 0.48, "g_v0_down": 0.05,
     "tau_hr": 3.0, "tau_contr": 8.0, "tau_svr": 6.0, "tau_v0": 20.0,
     # capillary exchange restoring the blood volume: excess (crystalloid) leaves with a time
     # constant of 30 min (volume kinetics, Hahn RG, Anesthesiology 2010;113:470, from
@@ -142,7 +148,8 @@ class Patient:
             "cvp": round(float(np.clip(rng.normal(4.0, 1.5), 1.0, 8.0)), 1),
             "pap": round(float(np.clip(rng.normal(16, 2), 12, 21)), 1),
             "pawp": round(float(np.clip(rng.normal(9.5, 1.5), 6, 13)), 1),
-            "co_factor": round(float(np.clip(rng.normal(1.0, 0.08), 0.8, 1.2)), 3),
+            # CI = 2.93 x co_factor: 2.64-3.66 L/min/m2, inside the typical 2.5-4.0
+            "co_factor": round(float(np.clip(rng.normal(1.03, 0.07), 0.9, 1.25)), 3),
             "starling_fraction_left": round(float(np.clip(rng.normal(0.62, 0.06), 0.5, 0.75)), 3),
             "starling_fraction_right": round(float(np.clip(rng.normal(0.62, 0.06), 0.5, 0.75)), 3),
             "spo2": round(float(np.clip(rng.normal(97, 1.2), 93, 100)), 1),
@@ -160,8 +167,14 @@ class Patient:
         if "hr" not in fixed:
             # keep the resting shock index (HR / SBP) inside its normal 0.5-0.7 (Allgower and
             # Burri 1967, published), with room for noise: HR <= 0.65 SBP, where
-            # SBP = MAP + 2/3 PP and PP = SV / C_sa = 3600 x co_factor / HR here
-            a, c = 0.65 * draws["map"], 0.65 * 2400.0 * draws["co_factor"]
+            # SBP = MAP + 2/3 PP and PP = SV / C_sa = 3600 x co_factor x (BSA ratio) /
+            # (blood volume ratio) / HR here
+            ref = Patient()
+            scale = ((math.sqrt(draws["height_cm"] * draws["weight_kg"]) /
+                      math.sqrt(ref.height_cm * ref.weight_kg))
+                     / (nadler_blood_volume(draws["sex"], draws["height_cm"], draws["weight_kg"])
+                        / nadler_blood_volume(ref.sex, ref.height_cm, ref.weight_kg)))
+            a, c = 0.65 * draws["map"], 0.65 * 2400.0 * draws["co_factor"] * scale
             draws["hr"] = min(draws["hr"], int((a + math.sqrt(a * a + 4 * c)) / 2))
         return cls(**draws)
 
@@ -218,6 +231,8 @@ class Params:
     volume: float
     setpoint: float
     reflex_slope: float
+    pp_weight: float
+    pp0: float
     g_hr_up: float
     g_hr_down: float
     g_contr_up: float
@@ -269,7 +284,10 @@ class Params:
             raise ValueError(f"patient map={pt.map}: too low for pmsf={pt.pmsf}")
         if pt.pap <= pt.pawp + 1:
             raise ValueError(f"patient pap={pt.pap} must exceed pawp={pt.pawp}")
-        q = r["co_l_min"] * size * pt.co_factor * 1000.0 / 60.0        # mL/s
+        # resting output scales with body surface area (the cardiac index is the size-free
+        # quantity, CI 2.5-4.0 L/min/m2 typical, critical care texts, from memory): the
+        # reference adult's CI is 5.4 / 1.85 = 2.93
+        q = (r["co_l_min"] * pt.bsa_m2 / ref_pt.bsa_m2 * pt.co_factor * 1000.0 / 60.0)  # mL/s
         sv0 = q * 60.0 / pt.hr
         volume = (sum(v0.values()) + c["sa"] * pt.map + c["sv"] * psv + c["ra"] * pt.cvp
                   + c["pa"] * pt.pap + c["pv"] * pt.pawp)
@@ -292,6 +310,7 @@ class Params:
             afterload_l=r["afterload_l"], afterload_r=r["afterload_r"],
             map0=pt.map, psv0=psv, cvp0=pt.cvp, pap0=pt.pap, pawp0=pt.pawp, volume=volume,
             setpoint=pt.map, reflex_slope=r["reflex_slope"],
+            pp_weight=r["pp_weight"], pp0=sv0 / c["sa"],
             g_hr_up=r["g_hr_up"] * pt.reflex, g_hr_down=r["g_hr_down"] * pt.reflex,
             g_contr_up=r["g_contr_up"] * pt.reflex, g_contr_down=r["g_contr_down"] * pt.reflex,
             g_svr_up=r["g_svr_up"] * pt.reflex, g_svr_down=r["g_svr_down"] * pt.reflex,

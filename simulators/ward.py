@@ -37,7 +37,7 @@ _MODEL_CONTROLS = [n for n in CONTROL_NAMES if n not in ("temp_shift", "spo2_shi
 
 # physiological wander (Ornstein-Uhlenbeck): heart rate and systemic resistance
 # (sizes of resting variability, common practice; scaled by ``artifacts.variability``)
-_WANDER = {"hr": (2.0, 90.0), "svr": (0.03, 240.0)}          # (sd, time constant s)
+_WANDER = {"hr": (1.5, 90.0), "svr": (0.03, 240.0)}          # (sd, time constant s)
 _WANDER_KEEP = np.exp(-1.0 / np.array([tau for _, tau in _WANDER.values()]))
 _WANDER_KICK = np.array([sd for sd, _ in _WANDER.values()]) * np.sqrt(1 - _WANDER_KEEP ** 2)
 

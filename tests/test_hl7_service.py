@@ -8,7 +8,6 @@ from __future__ import annotations
 import signal
 import subprocess
 import sys
-import time
 
 import pytest
 
@@ -18,31 +17,41 @@ from mosquitto import free_ports
 pytestmark = pytest.mark.broker
 
 
+def _run_listening(args: list[str], port: int, tmp_path) -> tuple[subprocess.Popen, object]:
+    """`hemostream run ARGS` in a child process, once its MLLP listener takes connections."""
+    import socket
+    log = open(tmp_path / "run.log", "wb")
+    p = subprocess.Popen([sys.executable, "-m", "hemostream.cli", "run", *args], cwd=ROOT,
+                         stderr=log, stdout=subprocess.DEVNULL)
+
+    def listening() -> bool:
+        assert p.poll() is None, (tmp_path / "run.log").read_text()
+        try:
+            socket.create_connection(("127.0.0.1", port), 0.3).close()
+            return True
+        except OSError:
+            return False
+    wait_until(listening, 30, "the MLLP listener")
+    return p, log
+
+
+def _simulate_to(port: int) -> subprocess.CompletedProcess:
+    return subprocess.run(
+        [sys.executable, "-m", "hemostream.cli", "simulate", "--scenario", "stable",
+         "--beds", "2", "--duration", "30s", "--seed", "3", "--publish-hl7",
+         f"127.0.0.1:{port}", "--speed", "1000"], cwd=ROOT, capture_output=True, text=True,
+        timeout=120)
+
+
 def test_run_takes_hl7_over_mllp_beside_mqtt(broker, tmp_path):  # noqa: F811
     db = f"sqlite:///{tmp_path / 'hl7.db'}"
     conf = write_toml(tmp_path / "run.toml", broker.url(), db, "hs-hl7-run", beds=2)
     port, = free_ports(1)
-    log = open(tmp_path / "run.log", "wb")
-    p = subprocess.Popen([sys.executable, "-m", "hemostream.cli", "run", "--config", str(conf),
-                          "--hl7-listen", f"127.0.0.1:{port}"], cwd=ROOT, stderr=log,
-                         stdout=subprocess.DEVNULL)
+    p, log = _run_listening(["--config", str(conf), "--hl7-listen", f"127.0.0.1:{port}"],
+                            port, tmp_path)
     try:
-        import socket
-
-        def listening() -> bool:
-            assert p.poll() is None, (tmp_path / "run.log").read_text()
-            try:
-                socket.create_connection(("127.0.0.1", port), 0.3).close()
-                return True
-            except OSError:
-                return False
-        wait_until(listening, 30, "the MLLP listener")
-        # config units are SDU9 (write_toml); the simulated ward is SDU2 -> map it in
-        sim = subprocess.run(
-            [sys.executable, "-m", "hemostream.cli", "simulate", "--scenario", "stable",
-             "--beds", "2", "--duration", "30s", "--seed", "3", "--publish-hl7",
-             f"127.0.0.1:{port}", "--speed", "1000"], cwd=ROOT, capture_output=True, text=True,
-            timeout=120)
+        # config units are SDU9 (write_toml); the simulated ward is SDU2
+        sim = _simulate_to(port)
         assert sim.returncode in (0, 1), sim.stderr
         assert "sent:" in sim.stderr, sim.stderr
     finally:
@@ -69,25 +78,9 @@ def test_run_stores_a_mapped_hl7_ward(broker, tmp_path):  # noqa: F811
         f'\n[intake.hl7]\nlisten = "127.0.0.1:{port}"\n\n'
         '[intake.hl7.locations]\n"SDU2^^bed-01" = { unit = "SDU2", bed = "bed-01" }\n'
         '"SDU2^^bed-02" = { unit = "SDU2", bed = "bed-02" }\n')
-    log = open(tmp_path / "run.log", "wb")
-    p = subprocess.Popen([sys.executable, "-m", "hemostream.cli", "run", "--config", str(conf)],
-                         cwd=ROOT, stderr=log, stdout=subprocess.DEVNULL)
+    p, log = _run_listening(["--config", str(conf)], port, tmp_path)
     try:
-        import socket
-
-        def listening() -> bool:
-            assert p.poll() is None, (tmp_path / "run.log").read_text()
-            try:
-                socket.create_connection(("127.0.0.1", port), 0.3).close()
-                return True
-            except OSError:
-                return False
-        wait_until(listening, 30, "the MLLP listener")
-        sim = subprocess.run(
-            [sys.executable, "-m", "hemostream.cli", "simulate", "--scenario", "stable",
-             "--beds", "2", "--duration", "30s", "--seed", "3", "--publish-hl7",
-             f"127.0.0.1:{port}", "--speed", "1000"], cwd=ROOT, capture_output=True, text=True,
-            timeout=120)
+        sim = _simulate_to(port)
         assert sim.returncode == 0, sim.stderr
         sent_aa = int(sim.stderr.split("AA ")[1].split()[0].rstrip(","))
         # acknowledged means committed: every AA is already a stored message

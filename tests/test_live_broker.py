@@ -119,23 +119,40 @@ def test_malformed_and_oversized_messages_are_stored_as_rejects_and_service_goes
 
 
 def test_ack_command_is_stored_for_audit(broker, tmp_path):
-    from live_fixtures import run_cli_process
+    """`hemostream ack` waits for the service's word: applied (exit 0), refused (exit 1, the
+    reason), or nobody answered (exit 1)."""
+    from live_fixtures import ROOT, PY
+    import subprocess
     db = f"sqlite:///{tmp_path / 'cmd.db'}"
+
+    def ack(*extra: str, wait: str = "10") -> subprocess.CompletedProcess:
+        return subprocess.run([PY, "-m", "hemostream.cli", "ack", "--bed", f"{UNIT}/bed-02",
+                               "--by", "nurse-k", "--broker", broker.url(), "--wait", wait,
+                               *extra], cwd=ROOT, capture_output=True, text=True, timeout=60)
+
+    r = ack("--alarm", "HR_high", wait="2")                 # no service is running yet
+    assert r.returncode == 1 and "no hemostream service" in r.stderr, r.stderr
     cfg = live_config(broker.url(), db, "hs-cmd")
     svc = ServiceThread(cfg, mqtt_transport(cfg)).start()
     try:
-        p = run_cli_process(["ack", "--bed", f"{UNIT}/bed-02", "--alarm", "MAP_LOW",
-                             "--by", "nurse-k", "--broker", broker.url()])
-        assert p.wait(30) == 0
-        p = run_cli_process(["ack", "--bed", f"{UNIT}/bed-02", "--alarm", "MAP_LOW",
-                             "--by", "nurse-k", "--pause-audio", "--broker", broker.url()])
-        assert p.wait(30) == 0
-        wait_until(lambda: len(query(db, "SELECT id FROM commands")) == 2, 20,
-                   "two stored commands")
+        t0 = time.time() - 40                # HR 150 for 30 s: over the 140 /min high limit
+        lines = [{"rx": _iso(t0 + k), "topic": f"hemo/{UNIT}/bed-02/obs", "payload": {
+            "v": 1, "device": "gw-sdu9-bed-02", "seq": 900 + k, "time": _iso(t0 + k),
+            "obs": [{"param": "HR", "value": 150, "unit": "/min"}]}} for k in range(30)]
+        publish(lines, broker.url(), None)
+        wait_until(lambda: query(db, "SELECT 1 FROM alarm_events WHERE rule = 'HR_high' AND "
+                                     "transition = 'raised'"), 20, "HR_high raised")
+        r = ack("--alarm", "MAP_LOW")                       # no such alarm on the bed
+        assert r.returncode == 1 and "not applied" in r.stderr, r.stderr
+        r = ack("--alarm", "HR_high")
+        assert r.returncode == 0 and "applied" in r.stdout, r.stderr
+        r = ack("--alarm", "HR_high", "--pause-audio")
+        assert r.returncode == 0, r.stderr
         rows = query(db, "SELECT action, alarm, by, result FROM commands ORDER BY id")
         assert [r[:3] for r in rows] == [("acknowledge", "MAP_LOW", "nurse-k"),
-                                         ("pause_audio", "MAP_LOW", "nurse-k")]
-        assert all(r[3] for r in rows)          # what became of it is recorded too
+                                         ("acknowledge", "HR_high", "nurse-k"),
+                                         ("pause_audio", "HR_high", "nurse-k")]
+        assert rows[0][3].startswith("not applied") and rows[1][3] == "applied"
     finally:
         svc.stop()
 

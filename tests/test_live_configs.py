@@ -20,7 +20,7 @@ from hemostream.core.config import BrokerConfig
 from hemostream.live.mqtt import MqttTransport
 from hemostream.live.transport import TransportError
 
-from live_fixtures import ROOT, wait_until
+from live_fixtures import ROOT, broker, wait_until  # noqa: F401
 from mosquitto import MOSQUITTO, MOSQUITTO_PASSWD, free_ports, make_certificates, require_broker
 
 pytestmark = pytest.mark.broker
@@ -183,3 +183,41 @@ def test_secure_config_with_the_shipped_acl(tmp_path, monkeypatch):
         assert asyncio.run(takeover()) == [b"after"]
     finally:
         _stop(p)
+
+
+def test_a_session_takeover_is_reported(broker, tmp_path):  # noqa: F811
+    """Without the broker binding client ids to users (dev.conf), a client connecting with
+    the service's client id takes its session over. The service reconnects and says so in
+    its log and in health, loudly once it keeps happening."""
+    import logging
+
+    import paho.mqtt.client as paho
+    from live_fixtures import ServiceThread, live_config, mqtt_transport
+
+    cfg = live_config(broker.url(), f"sqlite:///{tmp_path / 't.db'}", "hs-takeover")
+    records: list[logging.LogRecord] = []
+
+    class Keep(logging.Handler):
+        def emit(self, record: logging.LogRecord) -> None:
+            records.append(record)
+
+    h = Keep(level=logging.ERROR)
+    logging.getLogger("hemostream.live").addHandler(h)
+    svc = ServiceThread(cfg, mqtt_transport(cfg)).start()
+    try:
+        for _ in range(3):
+            c = paho.Client(paho.CallbackAPIVersion.VERSION2, client_id="hs-takeover",
+                            protocol=paho.MQTTv5)
+            c.connect("127.0.0.1", broker.ports["anon"])
+            c.loop_start()
+            time.sleep(0.5)
+            c.disconnect()
+            c.loop_stop()
+            wait_until(lambda: svc.svc.t.connected, 15, "the service reconnected")
+        wait_until(lambda: any(r.levelno == logging.CRITICAL for r in records), 15,
+                   "a critical log line about repeated takeovers")
+        assert any("taken its session over" in r.getMessage() or "took its session over" in r.getMessage() for r in records)
+        assert svc.svc.publish_health()["broker"]["takeovers_10min"] >= 3
+    finally:
+        logging.getLogger("hemostream.live").removeHandler(h)
+        svc.stop()

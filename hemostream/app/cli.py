@@ -276,21 +276,50 @@ def cmd_ack(args) -> int:
         print(f"error: {e}", file=sys.stderr)
         return 2
 
-    async def send() -> None:
+    alarm_topic = topic(unit, bed, "alarm")
+
+    async def send() -> str | None:
+        """Publish the command and wait for the service's word on it (None: no word)."""
         await t.connect()
         try:
+            await t.subscribe([alarm_topic], 1)       # before sending: the answer may be fast
             await t.publish_wait(cmd_topic, encode(body), 1, False, timeout=10)
+            deadline = time.monotonic() + args.wait
+
+            async def answer() -> str | None:
+                async for m in t.messages():
+                    try:
+                        c = json.loads(m.payload).get("command")
+                    except (ValueError, AttributeError):
+                        continue
+                    if (isinstance(c, dict) and c.get("alarm") == args.alarm
+                            and c.get("by") == args.by and c.get("action") == action
+                            and c.get("time") == body["time"]):
+                        return str(c.get("result"))
+                return None
+            try:
+                return await asyncio.wait_for(answer(), max(0.0, deadline - time.monotonic()))
+            except asyncio.TimeoutError:
+                return None
         finally:
             await t.disconnect()
 
     try:
-        asyncio.run(send())
+        result = asyncio.run(send())
     except TransportError as e:
         print(f"error: {e}", file=sys.stderr)
         return 1
-    print(f"sent {action} of {args.alarm!r} on {unit}/{bed} by {args.by} to {t.address}; "
-          "hemostream stores it for audit and publishes the new alarm state on "
-          f"{topic(unit, bed, 'alarm')}")
+    where = f"{action} of {args.alarm!r} on {unit}/{bed} by {args.by}"
+    if result is None:
+        print(f"error: no hemostream service applied or refused the {where} within "
+              f"{args.wait:g} s (is `hemostream run` serving unit {unit}? was the command "
+              "allowed by the broker's ACL?); the alarm's state is unchanged as far as is "
+              "known", file=sys.stderr)
+        return 1
+    if result != "applied":
+        print(f"error: {where}: {result}", file=sys.stderr)
+        return 1
+    print(f"{where}: applied, stored for audit; the new alarm state is on {alarm_topic}")
     return 0
 
 
@@ -449,6 +478,9 @@ def add_live_parsers(sub) -> None:
     a.add_argument("--by", required=True, metavar="NAME", help="who acknowledges")
     a.add_argument("--pause-audio", action="store_true",
                    help="pause the alarm's audio instead of acknowledging it")
+    a.add_argument("--wait", type=float, default=10.0, metavar="SECONDS",
+                   help="how long to wait for the service to apply or refuse it (default 10); "
+                   "the exit status is 0 only when it was applied")
     a.add_argument("--broker", metavar="URL", help="broker URL (overrides broker.url)")
     a.add_argument("--config", metavar="FILE",
                    help="configuration with the broker section (credentials, TLS files)")
@@ -517,7 +549,87 @@ def build_parser() -> argparse.ArgumentParser:
     add_review_parsers(sub)
     if add_simulate_parser is not None:
         add_simulate_parser(sub, publisher=publish_lines, hl7=hl7_cli)
+        add_validate_parser(sub)
     return p
+
+
+# --------------------------------------------------------------------------- validate
+
+def _cohort_size(text: str) -> int:
+    try:
+        n = int(text)
+    except ValueError:
+        n = 0
+    if n < 1:
+        raise argparse.ArgumentTypeError(f"expected a whole number of patients above 0, "
+                                         f"got {text!r}")
+    return n
+
+
+def add_validate_parser(sub) -> None:
+    from .validate import SCENARIOS
+    v = sub.add_parser(
+        "validate", help="the rules on a cohort of simulated patients: sensitivity, delay, "
+        "false alarms",
+        description="Simulate N patients per clinical scenario (seeded), replay them through "
+        "a configuration as `replay` does, and report per rule: sensitivity where the "
+        "scenario says it must fire, detection delay after the marked onset (median, 90th "
+        "percentile, maximum), false alarms per bed-day where it must not fire, and alarm "
+        "burden per bed-day. Simulated patients, not a clinical validation; a full cohort "
+        "takes minutes.", epilog=CAUTION)
+    v.add_argument("--config", metavar="FILE", help="TOML configuration to judge (default: "
+                   "the shipped rules)")
+    v.add_argument("--per-scenario", type=_cohort_size, default=30, metavar="N",
+                   help="patients per scenario (default 30)")
+    v.add_argument("--seed", type=int, default=0, metavar="S", help="random seed (default 0)")
+    v.add_argument("--scenarios", metavar="LIST", default=",".join(SCENARIOS),
+                   help=f"comma-separated scenario ids (default: {','.join(SCENARIOS)})")
+    v.add_argument("--json", metavar="FILE", help="also write the figures as JSON")
+    v.add_argument("--html", metavar="FILE", help="also write an HTML page with a delay "
+                   "distribution per rule")
+    v.set_defaults(func=cmd_validate)
+
+
+def cmd_validate(args) -> int:
+    from rich.table import Table
+
+    from simulators.scenario import ScenarioError, load_scenario
+
+    from .validate import HEADERS, dump_json, run_cohort, table_rows, write_html
+    names = [s.strip() for s in args.scenarios.split(",") if s.strip()]
+    for n in names:
+        try:
+            load_scenario(n)
+        except ScenarioError as e:
+            err.print(f"[red]error:[/] --scenarios: {e}", highlight=False)
+            return 2
+    cfg = load_for_command(args.config)
+    with Progress(TextColumn("{task.description}"), BarColumn(), console=err,
+                  disable=not err.is_terminal, transient=True) as prog:
+        task = prog.add_task("simulating", total=len(names))
+
+        def step(name: str, done: int, total: int) -> None:
+            prog.update(task, completed=done, description=f"simulating and replaying {name}")
+        result = run_cohort(cfg, args.per_scenario, args.seed, names, progress=step)
+    out = Console(soft_wrap=True, width=None if Console().is_terminal else 132)
+    t = Table(title=f"rules on {args.per_scenario} simulated patients per scenario "
+              f"({result['bed_days']:g} bed-days, seed {args.seed})")
+    for h in HEADERS:
+        t.add_column(h, justify="left" if h == "rule" else "right", no_wrap=h == "rule")
+    for row in table_rows(result):
+        t.add_row(*row)
+    out.print(t)
+    out.print(f"{CAUTION} Figures from simulated patients (docs/simulators.md), not a "
+              "clinical validation.", highlight=False)
+    try:
+        if args.json:
+            dump_json(result, args.json)
+        if args.html:
+            write_html(result, args.html, CAUTION)
+    except OSError as e:
+        err.print(f"[red]error:[/] cannot write the output: {e.strerror or e}")
+        return 1
+    return 0
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -56,6 +56,11 @@ Transition = Literal["raised", "updated", "escalated", "acknowledged", "audio_pa
 PRIORITY_RANK: Final[dict[str, int]] = {"info": 0, "low": 1, "medium": 2, "high": 3}
 
 
+EscalateCategory = Literal["physiological", "technical"]
+_LATCHING: dict[Priority, bool] = {"high": True, "medium": False, "low": False}
+_ESCALATE: list[EscalateCategory] = ["physiological"]
+
+
 class AlarmConfig(BaseModel):
     """Alarm lifecycle (IEC 60601-1-8 terms: priority, latching, acknowledged, audio paused).
 
@@ -64,8 +69,7 @@ class AlarmConfig(BaseModel):
 
     model_config = ConfigDict(extra="forbid")
     #: whether an alarm of a priority stays after its condition ended, until acknowledged
-    latching: dict[Priority, bool] = Field(
-        default_factory=lambda: {"high": True, "medium": False, "low": False})
+    latching: dict[Priority, bool] = Field(default_factory=lambda: _LATCHING.copy())
     #: an acknowledged alarm whose condition is still present is announced again after this
     #: (None: stays silent until the condition ends)
     acknowledge_s: Annotated[float, Field(gt=0)] | None = 600.0
@@ -74,8 +78,7 @@ class AlarmConfig(BaseModel):
     #: a medium alarm still present and not acknowledged this long becomes high priority
     #: (None: no escalation)
     escalate_medium_after_s: Annotated[float, Field(gt=0)] | None = 600.0
-    escalate_categories: list[Literal["physiological", "technical"]] = Field(
-        default_factory=lambda: ["physiological"])
+    escalate_categories: list[EscalateCategory] = Field(default_factory=lambda: list(_ESCALATE))
     #: acknowledging a technical alarm clears it, and its silent feeds or devices are not
     #: watched again until they send (a removed line is not announced every few minutes)
     acknowledge_clears_technical: bool = True

@@ -194,12 +194,12 @@ def derive_all(cur: dict[str, Current], bsa: tuple[float, float] | None
         if m is not None:
             eff["MAP"], src["MAP"] = m, ((mean_p, m.time),)
         if s is not None and d is not None:
-            ins = ((sys_p, s.time), (dia_p, d.time))
+            ins: tuple[tuple[str, float], ...] = ((sys_p, s.time), (dia_p, d.time))
             add(Derived("PP", pulse_pressure(s.value, d.value), ins))
             if m is None:
-                mp = mean_pressure(s.value, d.value)
-                add(Derived("MAP", mp, ins))
-                eff["MAP"], src["MAP"] = Current(mp, max(s.time, d.time)), ins
+                mean = mean_pressure(s.value, d.value)
+                add(Derived("MAP", mean, ins))
+                eff["MAP"], src["MAP"] = Current(mean, max(s.time, d.time)), ins
 
     # Pulmonary artery mean pressure: measured, else from systolic and diastolic.
     pam = get("PAP_MEAN")

@@ -229,8 +229,8 @@ class Processor:
                 bad.append((i, e))
         if not good:
             raise Reject(category_of(err), format_validation_error(err))
-        for i, e in bad:
-            self._reject(category_of(e), format_validation_error(e, prefix=f"obs[{i}]."),
+        for i, ve in bad:
+            self._reject(category_of(ve), format_validation_error(ve, prefix=f"obs[{i}]."),
                          topic, payload, rx, i, env.device, env.seq)
         return ObsMessage.model_construct(v=env.v, device=env.device, seq=env.seq,
                                           time=env.time, obs=good), index
@@ -329,7 +329,8 @@ class Processor:
                 continue
             ot = t if o.time is None else epoch(o.time)
             if ot - rx > skew:
-                self._reject("clock_skew", f"obs[{i}].time: {o.time.isoformat()} is "
+                shown = o.time.isoformat() if o.time is not None else iso(ot)
+                self._reject("clock_skew", f"obs[{i}].time: {shown} is "
                              f"{ot - rx:.0f} s ahead of arrival {iso(rx)} (limit {skew:g} s)",
                              topic, payload, rx, i, msg.device, msg.seq)
                 continue
@@ -444,6 +445,10 @@ class Processor:
         self.out.commands.append({
             "message_id": mid, "bed_id": bed.id, "time": t, "rx": rx, "action": msg.action,
             "alarm": msg.alarm, "by": msg.by, "result": result})
+        if self.publish:            # the sender learns what became of it (`hemostream ack`)
+            self.out.publish.append((f"hemo/{bed.unit}/{bed.bed}/alarm", {
+                "v": 1, "command": {"time": iso(t), "action": msg.action, "alarm": msg.alarm,
+                                    "by": msg.by, "result": result}}, False))
 
     def _rule_events(self, events: Iterable[Any]) -> None:
         for ev in events:
@@ -460,6 +465,7 @@ class Processor:
             self.out.publish.append((f"hemo/{unit}/{bed_name}/alarm",
                                      {"v": 1, "event": {**ev.as_row(), "time": iso(ev.time)}},
                                      False))
+            assert self.rules is not None       # events come only from the rules
             state = self.rules.alarm_state(ev.bed)
             self.out.publish.append((f"hemo/{unit}/{bed_name}/alarm",
                                      {"v": 1, "time": iso(ev.time), "state": state}, True))

@@ -245,10 +245,13 @@ def _no_nul(v: str) -> str:
     return v
 
 
-def _text(max_length: int, min_length: int = 0) -> Any:
-    """Text bounded to what every supported database column can store."""
-    return Annotated[StrictStr, Field(min_length=min_length, max_length=max_length),
-                     AfterValidator(_no_nul)]
+# text bounded to what every supported database column can store (no NUL, a maximum length)
+Name16 = Annotated[StrictStr, Field(min_length=1, max_length=16), AfterValidator(_no_nul)]
+Text16 = Annotated[StrictStr, Field(max_length=16), AfterValidator(_no_nul)]
+Text64 = Annotated[StrictStr, Field(max_length=64), AfterValidator(_no_nul)]
+Name64 = Annotated[StrictStr, Field(min_length=1, max_length=64), AfterValidator(_no_nul)]
+Name128 = Annotated[StrictStr, Field(min_length=1, max_length=128), AfterValidator(_no_nul)]
+Text500 = Annotated[StrictStr, Field(max_length=500), AfterValidator(_no_nul)]
 
 
 Time = Annotated[AwareDatetime, BeforeValidator(_rfc3339_only), AfterValidator(_plausible_time)]
@@ -262,9 +265,9 @@ _MODEL = ConfigDict(extra="ignore", allow_inf_nan=False, frozen=True)
 
 class Observation(BaseModel):
     model_config = _MODEL
-    param: _text(16, 1)
+    param: Name16
     value: Number
-    unit: _text(16)
+    unit: Text16
     status: Status = "valid"
     time: Time | None = None
 
@@ -290,7 +293,7 @@ class AdmitMessage(BaseModel):
     time: Time
     height_cm: Annotated[Number, Field(gt=30, le=260)] | None = None
     weight_kg: Annotated[Number, Field(gt=0.3, le=500)] | None = None
-    limits: Annotated[dict[_text(16, 1), Limit], Field(max_length=64)] = Field(default_factory=dict)
+    limits: Annotated[dict[Name16, Limit], Field(max_length=64)] = Field(default_factory=dict)
     discharged: StrictBool = False
 
 
@@ -309,9 +312,9 @@ class NoteMessage(BaseModel):
                   "free_text", "deterioration_onset"]
     volume_ml: PositiveNumber | None = None
     over_min: Annotated[Number, Field(ge=0)] | None = None
-    param: _text(16, 1) | None = None
-    by: _text(64) | None = None
-    text: _text(500) | None = None
+    param: Name16 | None = None
+    by: Text64 | None = None
+    text: Text500 | None = None
     duration_s: Annotated[Number, Field(ge=0)] | None = None
 
     @model_validator(mode="after")
@@ -334,8 +337,8 @@ class CommandMessage(BaseModel):
     v: Literal[1]
     time: Time
     action: Literal["acknowledge", "pause_audio"]
-    alarm: _text(128, 1)
-    by: _text(64, 1)
+    alarm: Name128
+    by: Name64
 
 
 PAYLOAD_MODELS: dict[str, type[BaseModel]] = {

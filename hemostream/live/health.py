@@ -43,6 +43,8 @@ class Health:
     outage_total_s: float = 0.0
     down_since: float | None = None
     last_error: str | None = None
+    #: times the session was taken over by another client with this client id (recent)
+    takeovers: list = field(default_factory=list)
     # per-interval figures (reset by report())
     _last_t: float = field(default_factory=time.monotonic)
     _last_received: int = 0
@@ -115,7 +117,8 @@ class Health:
             "shed": dict(sorted(self.shed.items())), "shed_total": sum(self.shed.values()),
             "broker": {"connected": self.connected, "connects": self.connects,
                        "outages": self.outages, "outage_s": round(outage, 2),
-                       "last_error": self.last_error},
+                       "last_error": self.last_error,
+                       "takeovers_10min": sum(1 for t in self.takeovers if now - t <= 600)},
             "derived_published": self.derived_published, "alarm_events": self.alarm_events,
         }
         self._last_t = mono

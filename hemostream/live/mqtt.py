@@ -146,6 +146,8 @@ class MqttTransport:
         self.generation = 0
         self.connected = False
         self.session_present = False
+        #: the last connection ended because another client took the session over
+        self.taken_over = False
         self._client: aiomqtt.Client | None = None
 
     def __repr__(self) -> str:
@@ -179,6 +181,15 @@ class MqttTransport:
             on_connect(c, userdata, flags, reason, properties)
 
         inner.on_connect = _on_connect
+        on_disconnect = inner.on_disconnect
+
+        def _on_disconnect(c, userdata, flags, reason, properties=None):
+            # MQTT 5 DISCONNECT reason 142 "Session taken over": another client connected
+            # with this client id (section 3.14.2.1)
+            self.taken_over = getattr(reason, "value", reason) == 142
+            on_disconnect(c, userdata, flags, reason, properties)
+
+        inner.on_disconnect = _on_disconnect
         return client
 
     async def connect(self) -> bool:

@@ -213,6 +213,7 @@ class Service:
         self.ready = asyncio.Event()        # set once subscribed the first time
         self._outstanding = 0               # batches submitted, not yet committed
         self._committed_evt = asyncio.Event()
+        self._dropped: bool | None = None    # a working connection was lost (taken over?)
         #: other intakes (objects with async start() / close()), e.g. the HL7 MLLP listener
         self.intakes: list[Any] = []
         self._external: set[asyncio.Future] = set()
@@ -364,6 +365,11 @@ class Service:
                 if await self._sleep_or_stop(delay):
                     return
                 continue
+            if attempt == 0 and self._dropped is not None:
+                # the broker closed a working connection yet took the very next one: that is
+                # what a session takeover looks like (when the broker does not say so)
+                self._taken_over(certain=self._dropped)
+            self._dropped = None
             attempt = 0
             gap = self.health.came_up(self.clock())
             try:
@@ -388,6 +394,7 @@ class Service:
                     self._fail(str(e))
                     return
                 self.health.went_down(self.clock(), str(e))
+                self._dropped = bool(getattr(self.t, "taken_over", False))
                 left = self.t.leftover()
                 log.warning("broker connection lost (%s); reconnecting; processing the %d "
                             "message(s) already received (they stay unacknowledged and "
@@ -402,6 +409,32 @@ class Service:
                 if await self._sleep_or_stop(backoff(0, b.reconnect_min_s,
                                                      b.reconnect_max_s)):
                     return
+
+    def _taken_over(self, certain: bool) -> None:
+        """Another client connected with this service's client id and took its session (the
+        broker said so, ``certain``, or closed a working connection and took the next one at
+        once): the service takes it back, but a client doing it again and again keeps every
+        bed of the unit from being monitored. Say so, loudly."""
+        now = self.clock()
+        h = self.health
+        h.takeovers.append(now)
+        recent = [t for t in h.takeovers if now - t <= 600]
+        h.takeovers[:] = recent[-100:]
+        cid = self.cfg.broker.client_id
+        if len(recent) >= 3:
+            log.critical("the MQTT session of client id %r was taken over %d times in 10 "
+                         "minutes: another client is using this service's client id, and "
+                         "messages of every bed may be lost meanwhile. Find that client; "
+                         "bind the client id to the service's user on the broker "
+                         "(configs/mosquitto/secure.conf: use_username_as_clientid)",
+                         cid, len(recent))
+        elif certain:
+            log.error("another client connected with this service's client id %r and took "
+                      "its session over (MQTT reason 142); reconnected", cid)
+        else:
+            log.error("the broker closed the connection of client id %r although it is "
+                      "reachable: another client may have connected with this id and taken "
+                      "its session over; reconnected", cid)
 
     async def _process_loop(self) -> None:
         b = self.cfg.broker

@@ -57,20 +57,22 @@ def _default_channels() -> dict[str, list[str]]:
     }
 
 
+NoteKind = Literal["line_flush", "zeroing", "sample_draw", "reposition"]
+_SPAN_NOTES: tuple[NoteKind, ...] = ("line_flush", "zeroing", "sample_draw")
+_RESET_NOTES: tuple[NoteKind, ...] = ("reposition",)
+
+
 class ArtifactConfig(BaseModel):
     """Values left out of trends, limits, patterns and fluid-challenge evaluation."""
 
     model_config = STRICT
     #: note kinds that open an artifact span for their ``param`` (or ``note_all_channels``)
-    note_kinds: list[Literal["line_flush", "zeroing", "sample_draw", "reposition"]] = Field(
-        default_factory=lambda: ["line_flush", "zeroing", "sample_draw"])
+    note_kinds: list[NoteKind] = Field(default_factory=lambda: list(_SPAN_NOTES))
     #: span length when the note gives no ``duration_s``
     note_span_s: Seconds = 60.0
     #: note kinds after which the trends of the note's channel restart (the reading's
     #: reference changed: a transducer levelled again)
-    trend_reset_note_kinds: list[Literal["line_flush", "zeroing", "sample_draw",
-                                         "reposition"]] = Field(
-        default_factory=lambda: ["reposition"])
+    trend_reset_note_kinds: list[NoteKind] = Field(default_factory=lambda: list(_RESET_NOTES))
     #: channels a note without ``param`` concerns (the invasive, transducer-based ones)
     note_all_channels: list[str] = Field(
         default_factory=lambda: ["ABP", "CVP", "PAP", "PAWP"])
@@ -188,10 +190,11 @@ class ArtifactDetector:
         # channels that can show a signature, in configuration order, with their checks:
         # (channel, ((param, outside range or None, zero step or None), ...), flat check)
         plan = []
-        for ch, ps in self.measured.items():
-            if ch in self.flat or any(p in self.outside or p in self.zero_step for p in ps):
+        for ch, measured in self.measured.items():
+            if ch in self.flat or any(p in self.outside or p in self.zero_step
+                                      for p in measured):
                 plan.append((ch, tuple((p, self.outside.get(p), self.zero_step.get(p))
-                                       for p in ps), self.flat.get(ch)))
+                                       for p in measured), self.flat.get(ch)))
         self._plan = tuple(plan)
         self.damp = {ch: (f"{ch}_SYS", f"{ch}_DIA", f"{ch}_MEAN", frac)
                      for ch, frac in cfg.damping_fraction.items()}

@@ -230,11 +230,11 @@ class Patterns:
                 for k in ks:
                     dirty[k] = True
         for p in changed:
-            ks = self.by_trend.get(p)
-            if ks:
+            kt = self.by_trend.get(p)
+            if kt:
                 if dirty is None:
                     dirty = [False] * len(self.patterns)
-                for k in ks:
+                for k in kt:
                     dirty[k] = True
         if dirty is not None:
             for k, pat in enumerate(self.patterns):

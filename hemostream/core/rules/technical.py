@@ -40,6 +40,9 @@ def _default_feed_silent() -> dict[str, float]:
                               "PAP_SYS", "PAP_DIA", "PAP_MEAN", "SPO2", "RR")}
 
 
+NotValid = Literal["invalid", "questionable", "calibrating", "test"]
+_NOT_VALID: tuple[NotValid, ...] = ("invalid", "questionable")
+
 class TechnicalConfig(BaseModel):
     """Technical alarm conditions (IEC 60601-1-8 keeps them apart from physiological ones)."""
 
@@ -51,8 +54,7 @@ class TechnicalConfig(BaseModel):
     device_silent_after_s: PosSeconds = 30.0
     device_silent_priority: Priority = "medium"
     #: statuses that count as not valid, and how long before it is a condition
-    not_valid_statuses: list[Literal["invalid", "questionable", "calibrating", "test"]] = Field(
-        default_factory=lambda: ["invalid", "questionable"])
+    not_valid_statuses: list[NotValid] = Field(default_factory=lambda: list(_NOT_VALID))
     not_valid_after_s: Seconds = 30.0
     not_valid_priority: Priority = "low"
 
@@ -145,7 +147,8 @@ class Technical:
         items = []
         for p in sorted(b.silent):
             d = b.param_device.get(p)
-            if d in b.dev_silent or d in b.dev_ignored or t - b.dev_last.get(d, NINF) >= after:
+            if (d is None or d in b.dev_silent or d in b.dev_ignored
+                    or t - b.dev_last.get(d, NINF) >= after):
                 continue
             items.append(p)
         if not items and self.sh.book.get(b.key, FEED_SILENT) is None:

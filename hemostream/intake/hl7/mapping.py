@@ -10,6 +10,9 @@ Identity: MSH-10 (message control id) becomes the wire ``seq`` (digits as the nu
 spell, anything else a 48-bit digest above 2^62), the device comes from OBX-18 (else MSH-3),
 and the message ``time`` from OBR-7 (else MSH-7), so a resent message is the same
 (device, seq, time) and dropped as a duplicate.
+
+Size: one segment reader per HL7 field group read (MSH, PV1, OBR, OBX) with its reject
+reasons; split by segment it would scatter one message's mapping over several files.
 """
 
 from __future__ import annotations

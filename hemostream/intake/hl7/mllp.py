@@ -11,6 +11,9 @@ identities are reloaded from the database) and it is acknowledged AA.
 
 Framing: <VT> message <FS><CR> (0x0b ... 0x1c 0x0d). Messages on one connection are taken
 one at a time (original mode: the sender waits for each ACK); connections run concurrently.
+
+Size: the listener, its ACK builder and the stand-alone runner belong together (the runner
+is the listener's test harness and its smallest deployment).
 """
 
 from __future__ import annotations
