@@ -39,6 +39,7 @@ from ..replay import replay_file
 from ..review.cli import add_parsers as add_review_parsers
 from ..store import StoreError, open_engine
 from .demo import demo_lines, run_demo
+from .validate import HEADERS, SCENARIOS, dump_json, run_cohort, table_rows, write_html
 from .watch import run_watch
 
 try:
@@ -567,7 +568,6 @@ def _cohort_size(text: str) -> int:
 
 
 def add_validate_parser(sub) -> None:
-    from .validate import SCENARIOS
     v = sub.add_parser(
         "validate", help="the rules on a cohort of simulated patients: sensitivity, delay, "
         "false alarms",
@@ -595,7 +595,6 @@ def cmd_validate(args) -> int:
 
     from simulators.scenario import ScenarioError, load_scenario
 
-    from .validate import HEADERS, dump_json, run_cohort, table_rows, write_html
     names = [s.strip() for s in args.scenarios.split(",") if s.strip()]
     for n in names:
         try:
