@@ -5,6 +5,7 @@ from __future__ import annotations
 import sys
 import tomllib
 from pathlib import Path
+from typing import Callable
 
 from pydantic import ValidationError
 
@@ -75,6 +76,66 @@ def with_overrides(cfg: Config, broker: str | None = None, db: str | None = None
     if db:
         upd["store"] = cfg.store.model_copy(update={"url": db})
     return cfg.model_copy(update=upd) if upd else cfg
+
+
+#: database URL schemes the store opens (SQLAlchemy dialects with their drivers installed)
+STORE_SCHEMES = ("sqlite", "postgresql")
+
+
+def _runtime_problems(data: dict, cfg: Config | None) -> list[str]:
+    """What ``run`` checks beyond the schema: the database URL's scheme, unit and bed ids
+    given twice (the broker's settings are checked by the caller's ``extra``)."""
+    out = []
+    store = data.get("store") if isinstance(data.get("store"), dict) else {}
+    url = store.get("url")
+    if isinstance(url, str):
+        scheme = url.split(":", 1)[0].split("+", 1)[0].lower() if ":" in url else ""
+        if scheme not in STORE_SCHEMES:
+            out.append(f"store.url: {url.split('@')[-1]!r} is not a database URL this store "
+                       "opens; expected sqlite:///FILE or postgresql+psycopg://HOST/DB")
+    units = data.get("units") if isinstance(data.get("units"), list) else []
+    seen_units: set = set()
+    for i, u in enumerate(units):
+        if not isinstance(u, dict):
+            continue
+        uid = u.get("id")
+        if isinstance(uid, str):
+            if uid in seen_units:
+                out.append(f"units[{i}].id: unit {uid!r} is given twice")
+            seen_units.add(uid)
+        beds = u.get("beds") if isinstance(u.get("beds"), list) else []
+        seen: set = set()
+        for j, b in enumerate(beds):
+            if isinstance(b, str) and b in seen:
+                out.append(f"units[{i}].beds[{j}]: bed {b!r} is given twice in unit {uid!r}")
+            seen.add(b)
+    return out
+
+
+def check_config_file(path: str | Path,
+                      extra: Callable[[dict, Config | None], list[str]] | None = None
+                      ) -> list[str]:
+    """Every problem of a configuration file at once (``check-config``): the schema's, and
+    what ``run`` would refuse (see :func:`_runtime_problems`); [] when it is usable."""
+    p = Path(path)
+    try:
+        data = tomllib.loads(p.read_text(encoding="utf-8"))
+    except OSError as e:
+        return [f"cannot read the file: {e.strerror or e}"]
+    except tomllib.TOMLDecodeError as e:
+        return [f"not valid TOML: {e}"]
+    cfg = None
+    try:
+        cfg = Config.model_validate(data)
+        problems: list[str] = []
+    except ValidationError as e:
+        problems = config_problems(e)
+    keys = {q.split(":", 1)[0] for q in problems}
+    more = (extra(data, cfg) if extra is not None else []) + _runtime_problems(data, cfg)
+    for q in more:
+        if q.split(":", 1)[0] not in keys and q not in problems:
+            problems.append(q)
+    return problems
 
 
 def load_config(path: str | Path | None = None) -> Config:

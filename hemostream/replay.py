@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import time as _time
+from collections import Counter
 from dataclasses import dataclass, fields
 from pathlib import Path
 from typing import Any, Callable, Literal
@@ -106,6 +107,14 @@ def feed_line(proc: Processor, line: bytes, lineno: int, max_bytes: int) -> floa
     return rx
 
 
+def _count_lines(p: Path) -> int:
+    n = 0
+    with open(p, "rb") as f:
+        for block in iter(lambda: f.read(1 << 20), b""):
+            n += block.count(b"\n")
+    return n
+
+
 def replay_file(path: str | Path, db_url: str | None = None, config: Config | None = None, *,
                 speed: float | None = None,
                 progress: Callable[[int, int], None] | None = None,
@@ -121,10 +130,18 @@ def replay_file(path: str | Path, db_url: str | None = None, config: Config | No
     total = p.stat().st_size
     engine = open_engine(url)
     record_config(engine, cfg)             # the configuration in force, kept with the data
-    resume = load_resume(engine)
+    # a recording replayed again into the same database: every message it already holds is
+    # known by its identity, however old, so nothing is stored twice (the live service only
+    # needs the recent ones: redeliveries are recent)
+    resume = load_resume(engine, recent=max(200_000, _count_lines(p)))
+    per_key = Counter(k for k, _ in resume.messages)
+    proc_cfg = cfg
+    if per_key and max(per_key.values()) > cfg.ingest.dedup_per_device // 2:
+        proc_cfg = cfg.model_copy(update={"ingest": cfg.ingest.model_copy(update={
+            "dedup_per_device": max(per_key.values()) + cfg.ingest.dedup_per_device})})
     if rules == "default":
         rules = make_rules(cfg)
-    proc = Processor(cfg, rules=rules, publish=False, next_ids=resume.next_ids,
+    proc = Processor(proc_cfg, rules=rules, publish=False, next_ids=resume.next_ids,
                      known_beds=resume.beds,
                      known_messages=resume.messages)
     writer = Writer(engine, max_batches=4, store_cfg=cfg.store)   # bounded: paces the reader

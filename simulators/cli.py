@@ -67,6 +67,9 @@ def add_parser(subparsers: Any, publisher: Publisher | None = None, hl7: Any = N
                    help="publish live to an MQTT broker (QoS 1), e.g. mqtt://localhost:1883"
                    + ("" if publisher else " (not available in this installation: use --out)")
                    + "; with --out as well, the recording is written as it is published")
+    p.add_argument("--give-up-after", type=float, metavar="SECONDS",
+                   help="with --publish: stop after this long without a broker connection "
+                   "(default 120) and say how many messages were not delivered")
     p.add_argument("--format", choices=("jsonl", "hl7"), default="jsonl",
                    help="with --out: the wire format's JSON Lines (default), or HL7 v2 "
                    "ORU^R01 messages (IHE PCD-01, IEEE 11073 terms; see docs/hl7.md)")
@@ -195,6 +198,9 @@ def _publish(args: argparse.Namespace, scenario: Any, duration: int,
         print(f"publishing {scenario.id} to {args.publish} at {args.speed:g} x real time "
               f"({format_duration(duration)} simulated)", file=sys.stderr)
     try:
+        if args.give_up_after is not None:
+            return int(publisher(lines, args.publish, args.speed,
+                                 give_up_s=args.give_up_after) or 0)
         return int(publisher(lines, args.publish, args.speed) or 0)
     finally:
         if fh is not None and fh is not sys.stdout:

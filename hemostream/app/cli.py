@@ -22,17 +22,17 @@ from pathlib import Path
 from pydantic import ValidationError
 from rich.console import Console
 from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
-
 from rich.table import Table
 
 from .. import CAUTION, query
-from ..config import ConfigError, load_config, load_for_command, with_overrides
+from ..config import (check_config_file, load_for_command,
+                      with_overrides)
 from ..core.config import Config
 from ..core.redact import RedactingFilter
 from ..core.wire import ID_RE, command_body, encode, topic
 from ..live.health import status_payload
-from ..live.mqtt import BrokerSettingsError, MqttTransport
-from ..live.publish import publish_recording_lines
+from ..live.mqtt import BrokerSettingsError, MqttTransport, parse_broker_url
+from ..live.publish import PublishError, publish_recording_lines
 from ..live.service import Service, status_topic
 from ..live.transport import TransportError
 from ..intake.hl7 import cli as hl7_cli
@@ -41,7 +41,7 @@ from ..replay import replay_file
 from ..review.cli import add_parsers as add_review_parsers
 from ..store import StoreError, open_engine
 from ..store.cli import add_parser as add_db_parser
-from .demo import run_demo
+from .demo import demo_lines, run_demo
 from .watch import run_watch
 
 try:
@@ -73,6 +73,48 @@ def setup_logging(level: str) -> None:
         logging.DEBUG if level.upper() == "DEBUG" else logging.WARNING)
 
 
+# --------------------------------------------------------------------------- argument types
+
+def positive_float(text: str) -> float:
+    """An argparse type: a number above 0 (argparse names the option in its message)."""
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number above 0, got {text!r}") from None
+    if not v > 0 or v == float("inf"):
+        raise argparse.ArgumentTypeError(f"expected a number above 0, got {text!r}")
+    return v
+
+
+def non_negative_int(text: str) -> int:
+    try:
+        v = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number 0 or more, got {text!r}"
+                                         ) from None
+    if v < 0:
+        raise argparse.ArgumentTypeError(f"expected a whole number 0 or more, got {text!r}")
+    return v
+
+
+def duration(text: str) -> float:
+    """Seconds from 90, 90s, 10m, 2h or 1h30m (as ``simulate --duration`` takes them)."""
+    import re
+    s = text.strip().lower().replace(" ", "")
+    try:
+        v = float(s)
+    except ValueError:
+        m = re.fullmatch(r"(?:(\d+(?:\.\d+)?)h)?(?:(\d+(?:\.\d+)?)m)?(?:(\d+(?:\.\d+)?)s)?", s)
+        if not s or m is None or not any(m.groups()):
+            raise argparse.ArgumentTypeError(
+                f"expected a duration such as 90, 90s, 10m, 2h or 1h30m, got {text!r}") from None
+        h, mi, se = (float(g) if g else 0.0 for g in m.groups())
+        v = h * 3600 + mi * 60 + se
+    if not v > 0:
+        raise argparse.ArgumentTypeError(f"expected a duration above 0, got {text!r}")
+    return v
+
+
 # --------------------------------------------------------------------------- replay, query
 
 def cmd_replay(args) -> int:
@@ -102,6 +144,7 @@ def cmd_replay(args) -> int:
         print(json.dumps(summary.as_dict(), indent=2))
         return 0
     out = Console(soft_wrap=True)
+    out.print(f"CAUTION: {CAUTION}", highlight=False)
     out.print(f"[bold]replayed[/] {summary.path} into {summary.db_url}")
     out.print(f"  lines {summary.lines}   messages stored {summary.messages}   "
               f"observations {summary.observations}   duplicates dropped {summary.duplicates}"
@@ -111,6 +154,9 @@ def cmd_replay(args) -> int:
     out.print(f"  rejected {summary.rejected_total}"
               + "".join(f"\n    {k}: {v}" for k, v in summary.rejected.items()))
     out.print(f"  {summary.seconds:.2f} s, {summary.messages_per_s:,.0f} lines/s")
+    if summary.duplicates:
+        out.print(f"  {summary.duplicates} message(s) were already in the database (or came "
+                  "twice) and were not stored again")
     out.print(f"  see them with: hemostream query rejected --db {summary.db_url}"
               if summary.rejected_total else
               f"  see them with: hemostream query derived --db {summary.db_url}")
@@ -139,18 +185,36 @@ def cmd_query(args) -> int:
         return 0
     if args.format == "table":
         err.print(f"{n} row(s)")
+    err.print(f"CAUTION: {CAUTION}", highlight=False)   # stderr: jsonl and csv stay data
     return 0
+
+
+def broker_problems(data: dict, cfg: Config | None) -> list[str]:
+    """The broker settings as ``run`` checks them: URL (scheme, host, numeric port), then
+    the password source and TLS files."""
+    broker = data.get("broker") if isinstance(data.get("broker"), dict) else {}
+    if isinstance(broker.get("url"), str):
+        try:
+            parse_broker_url(broker["url"])
+        except BrokerSettingsError as e:
+            return [f"broker.url: {e}"]
+    if cfg is not None:
+        try:
+            MqttTransport(cfg.broker)
+        except BrokerSettingsError as e:
+            return [f"broker: {e}"]
+    return []
 
 
 def cmd_check_config(args) -> int:
     bad = 0
     for f in args.files:
-        try:
-            load_config(f)
-            print(f"{f}: ok")
-        except ConfigError as e:
+        problems = check_config_file(f, broker_problems)
+        if problems:
             bad += 1
-            print(str(e))
+            print("\n".join(f"{f}: {p}" for p in problems))
+        else:
+            print(f"{f}: ok")
     return 1 if bad else 0
 
 
@@ -274,6 +338,18 @@ def cmd_demo(args) -> int:
     if db.startswith("sqlite:///"):
         Path(db[len("sqlite:///"):]).parent.mkdir(parents=True, exist_ok=True)
     dashboard = not args.plain and sys.stdout.isatty() and sys.stdin.isatty()
+    if args.broker:
+        try:
+            parse_broker_url(args.broker)
+        except BrokerSettingsError as e:
+            print(f"error: --broker: {e}", file=sys.stderr)
+            return 2
+    if args.scenario:
+        try:
+            demo_lines(args.scenario, 1.0, args.seed)
+        except ValueError as e:
+            print(f"error: --scenario {args.scenario!r}: {e}", file=sys.stderr)
+            return 2
     result = asyncio.run(run_demo(cfg, db, speed=args.speed, duration_s=args.duration,
                                   scenario=args.scenario, seed=args.seed,
                                   broker_url=args.broker, every_s=args.every,
@@ -310,16 +386,26 @@ def cmd_watch(args) -> int:
 
 # --------------------------------------------------------------------------- simulate
 
-def publish_lines(lines, url: str, speed: float | None) -> int:
-    """``simulate --publish``: stream recording lines to a broker at QoS 1 (the live shell)."""
+def publish_lines(lines, url: str, speed: float | None, give_up_s: float = 120.0) -> int:
+    """``simulate --publish``: stream recording lines to a broker at QoS 1 (the live shell);
+    counts what the broker acknowledged and says what was not delivered."""
     try:
-        s = asyncio.run(publish_recording_lines(lines, url, speed))
+        parse_broker_url(url)
+    except BrokerSettingsError as e:
+        err.print(f"[red]error:[/] --publish: {e}", highlight=False)
+        return 2
+    try:
+        s = asyncio.run(publish_recording_lines(lines, url, speed,
+                                                max_seconds_down=give_up_s))
+    except PublishError as e:
+        err.print(f"[red]error:[/] {e}; gave up: {e.summary.words()}", highlight=False)
+        return 1
     except TransportError as e:
         err.print(f"[red]error:[/] {e}", highlight=False)
         return 1
     except KeyboardInterrupt:
         return 130
-    err.print(f"published {s.published} messages to {url}")
+    err.print(f"published to {url}: {s.words()}", highlight=False)
     return 0
 
 
@@ -337,7 +423,7 @@ def add_store_parsers(sub) -> None:
                    "defaults, see configs/default.toml)")
     r.add_argument("--db", metavar="URL", help="database URL, e.g. sqlite:///ward.db or "
                    "postgresql+psycopg://127.0.0.1/test (default: the config's store.url)")
-    r.add_argument("--speed", type=float, metavar="N", help="pace the replay at N x real "
+    r.add_argument("--speed", type=positive_float, metavar="N", help="pace the replay at N x real "
                    "time (default: as fast as possible)")
     r.add_argument("--json", action="store_true", help="print the summary as JSON")
     r.add_argument("--quiet", action="store_true", help="no progress bar")
@@ -353,7 +439,7 @@ def add_store_parsers(sub) -> None:
     q.add_argument("--bed", metavar="BED", help="bed id, or UNIT/BED")
     q.add_argument("--param", metavar="P", help="parameter (or rule id for alarms)")
     q.add_argument("--since", metavar="TIME", help="RFC 3339 time, e.g. 2026-12-01T08:00:00Z")
-    q.add_argument("--limit", type=int, metavar="N", help="at most N rows")
+    q.add_argument("--limit", type=non_negative_int, metavar="N", help="at most N rows")
     q.add_argument("--format", choices=("table", "jsonl", "csv"), default="table")
     q.set_defaults(func=cmd_query)
 
@@ -415,14 +501,15 @@ def add_live_parsers(sub) -> None:
                    help="database URL (default: sqlite:///hemostream-demo.db)")
     d.add_argument("--broker", metavar="URL", help="run the demo through this real broker")
     d.add_argument("--config", metavar="FILE", help="TOML configuration (default: shipped)")
-    d.add_argument("--speed", type=float, default=10.0, metavar="N",
+    d.add_argument("--speed", type=positive_float, default=10.0, metavar="N",
                    help="N x real time (default 10; 1 for real time)")
-    d.add_argument("--duration", type=float, metavar="SECONDS",
-                   help="stop after this much of the scenario (default: all of it)")
+    d.add_argument("--duration", type=duration, metavar="D",
+                   help="stop after this much of the scenario, e.g. 600, 90s, 10m, 1h30m "
+                   "(default: all of it)")
     d.add_argument("--scenario", metavar="NAME", help="simulator scenario (default: the "
                    "demo ward)")
     d.add_argument("--seed", type=int, default=0)
-    d.add_argument("--every", type=float, default=2.0, metavar="SECONDS",
+    d.add_argument("--every", type=positive_float, default=2.0, metavar="SECONDS",
                    help="how often the summary is printed (wall clock)")
     d.add_argument("--plain", action="store_true", help="print the compact summary even "
                    "on a terminal (instead of the unit dashboard)")

@@ -31,6 +31,7 @@ from rich.console import Console
 from .. import CAUTION
 from ..core.rules.phrases import phrase
 from ..core.config import Config
+from ..core.display import fmt_value
 from ..core.wire import (bed_topic, command_body, encode, format_epoch, is_status_topic,
                          parse_time_or_none, split_topic, status_topic, topic)
 from ..dashboard import Dashboard, Screen, UnitView
@@ -159,7 +160,7 @@ class Summary:
                 mean = v.get("ABP_MEAN", v.get("NIBP_MEAN"))
                 if mean is not None:
                     v["MAP"] = mean
-            shown = " ".join(f"{p} {_fmt(v[p])}" for p in
+            shown = " ".join(f"{p} {fmt_value(p, v[p])}" for p in
                              ("HR", "MAP", "CVP", "CO", "CI", "SVR", "SI", "SPO2") if p in v)
             st = b["alarms"]
             alarms = ""
@@ -176,12 +177,6 @@ class Summary:
                        f"{h.get('stored')}, rejected {h.get('rejected_total')}, duplicates "
                        f"{h.get('duplicates')}, db write {h['db_write_ms']['last']:.1f} ms")
         return out
-
-
-def _fmt(v: Any) -> str:
-    if not isinstance(v, (int, float)):
-        return str(v)
-    return f"{v:.2f}" if abs(v) < 10 else f"{v:.0f}"
 
 
 async def _feed_inproc(broker: InprocBroker, lines: Iterable[dict], clock: ScaledClock,
@@ -281,6 +276,18 @@ async def run_demo(cfg: Config, db_url: str, *, speed: float = 1.0,
                 log.debug("view: %s", e)
                 await asyncio.sleep(0.5)
 
+    where = broker_url or "the in-process broker"
+
+    def waiting_line() -> str | None:
+        """What the demo is waiting for, in words (None while the stream flows)."""
+        if not svc.ready.is_set():
+            why = svc.health.last_error
+            return (f"  waiting for the broker at {where}: not connected"
+                    + (f" ({why})" if why else "") + "; Ctrl-C ends the demo")
+        if not svc.t.connected:
+            return f"  not connected to {where} (reconnecting); Ctrl-C ends the demo"
+        return None
+
     async def ticker() -> None:
         while True:
             await asyncio.sleep(every_s if dash is None else 0.2)
@@ -289,6 +296,9 @@ async def run_demo(cfg: Config, db_url: str, *, speed: float = 1.0,
             if view is None:
                 stamp = format_epoch(clock())[11:19]
                 print(f"[{stamp}] " + CAUTION.split(".")[0] + ".", file=out)
+                w = waiting_line()
+                if w:
+                    print(w, file=out)
                 for line in summary.lines():
                     print(line, file=out)
                 out.flush()
@@ -296,12 +306,21 @@ async def run_demo(cfg: Config, db_url: str, *, speed: float = 1.0,
     watch_task = asyncio.create_task(watch())
     tick_task = asyncio.create_task(ticker())
     sent = 0
+    unreachable = None
     try:
         ready = asyncio.create_task(svc.ready.wait())
-        done, _ = await asyncio.wait({ready, svc_task}, return_when=asyncio.FIRST_COMPLETED)
-        if svc_task in done:
-            ready.cancel()
-        else:
+        stopped = asyncio.create_task(stop.wait())
+        # without a connection the demo waits at most as long as its whole run would take
+        give_up = (None if duration_s is None else
+                   max(5.0, duration_s / speed + 5.0))
+        done, _ = await asyncio.wait({ready, svc_task, stopped}, timeout=give_up,
+                                     return_when=asyncio.FIRST_COMPLETED)
+        for t in (ready, stopped):
+            t.cancel()
+        if not done:
+            unreachable = (f"no connection to the broker at {where} within {give_up:g} s"
+                           + (f" ({svc.health.last_error})" if svc.health.last_error else ""))
+        if ready in done and not stop.is_set():
             if broker_url is None:
                 sent = await _feed_inproc(broker, lines, clock, stop)
             else:
@@ -331,10 +350,13 @@ async def run_demo(cfg: Config, db_url: str, *, speed: float = 1.0,
         except Exception:  # noqa: BLE001
             pass
     h = svc.health
-    result = {"exit": code, "sent": sent, "received": h.received, "stored": h.stored,
+    result = {"exit": code or (1 if unreachable else 0), "sent": sent, "received": h.received, "stored": h.stored,
               "accepted": h.accepted, "duplicates": h.duplicates,
               "rejected": sum(h.rejected.values()), "db": db_url, "source": source,
-              "fatal": svc.fatal}
+              "fatal": svc.fatal or unreachable}
+    if stop.is_set() and not svc.ready.is_set():
+        print(f"demo stopped before it was connected to {where}"
+              + (f" ({h.last_error})" if h.last_error else ""), file=out)
     for line in summary.lines():
         print(line, file=out)
     print(f"demo ended: {h.stored} messages stored ({h.accepted} accepted, "
@@ -400,7 +422,8 @@ def demo_dashboard(svc: Service, clock: Callable[[], float], loop: asyncio.Abstr
         return {"connected": svc.t.connected, "rate": h.get("messages_per_s", 0.0),
                 "lag_s": (h.get("lag_s") or {}).get("ingest_max")}
 
-    dash = Dashboard(model, Screen(unit="demo ward", source=source, operator=operator),
+    dash = Dashboard(model, Screen(unit="", source=source, operator=operator,
+                                   unit_names={u.id: u.name for u in svc.cfg.units if u.name}),
                      clock=clock, send_command=send_command, status=status, lock=lock,
                      console=console)
     return DemoDashboard(dash, model, lock)

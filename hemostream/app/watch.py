@@ -19,6 +19,7 @@ from typing import Any
 
 from rich.console import Console
 
+from .. import CAUTION
 from ..core.config import Config
 from ..core.wire import bed_topic, command_body, encode, status_topic, topic
 from ..dashboard import Dashboard, Screen, UnitView, unit_screen
@@ -137,6 +138,7 @@ def run_watch(cfg: Config, unit: str, operator: str | None = None,
               once_s: float | None = None, size: tuple[int, int] = (120, 40)) -> int:
     """Show the unit live until quit; with ``once_s``, print one screen after that long."""
     feed = BrokerFeed(cfg, unit)
+    names = {u.id: u.name for u in cfg.units if u.name}
     feed.start()
     try:
         if once_s is not None:
@@ -147,15 +149,22 @@ def run_watch(cfg: Config, unit: str, operator: str | None = None,
             st = feed.status()
             scr = Screen(unit=unit, source=str(feed.transport.address),
                          connected=st["connected"], rate=st["rate"], lag_s=st["lag_s"],
-                         operator=operator)
+                         operator=operator, unit_names=names)
             with feed.lock:
                 console.print(unit_screen(feed.view, scr, time.time(), size[0], size[1]))
+                seen = bool(feed.view.beds)
+            print(f"CAUTION: {CAUTION}")
             if feed.error and not feed.connected:
                 print(f"not connected: {feed.error}")
                 return 1
+            if not seen:
+                known = ", ".join(u.id for u in cfg.units) or "none configured"
+                print(f"no data from unit {unit!r} seen in {once_s:g} s: check the unit id "
+                      f"(units in the configuration: {known}) and that the service runs")
+                return 1
             return 0
         dash = Dashboard(feed.view, Screen(unit=unit, source=str(feed.transport.address),
-                                           operator=operator),
+                                           operator=operator, unit_names=names),
                          send_command=lambda b, a, i: feed.send_command(b, a, i, operator or ""),
                          status=feed.status, lock=feed.lock)
         dash.run()

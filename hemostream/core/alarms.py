@@ -129,7 +129,8 @@ class Alarm:
 
     __slots__ = ("id", "bed", "rule", "priority", "category", "latching", "since", "value",
                  "details", "signature", "present", "acknowledged", "acknowledged_by",
-                 "ack_until", "paused_until", "escalated", "message", "unacked_since")
+                 "ack_until", "paused_until", "escalated", "message", "unacked_since",
+                 "last_t")
 
     def __init__(self, aid: str, bed: str, rule: str, priority: Priority, category: Category,
                  latching: bool, since: float, value: float | None, details: dict,
@@ -152,6 +153,7 @@ class Alarm:
         self.escalated = False
         self.message = message
         self.unacked_since = since
+        self.last_t = since           # time of its latest event: none goes before it
 
     def as_dict(self) -> dict[str, Any]:
         return {"id": self.id, "rule": self.rule, "priority": self.priority,
@@ -206,6 +208,9 @@ class AlarmBook:
 
     def _ev(self, a: Alarm, t: float, transition: Transition, by: str | None = None,
             details: dict | None = None) -> RuleEvent:
+        # an alarm's events keep their order in time: a condition can be seen to end on a
+        # measurement timed before the clock tick that raised it (a feed that comes back)
+        t = a.last_t = max(t, a.last_t)
         return RuleEvent(t, a.bed, a.id, a.rule, a.priority, a.category, transition, a.value,
                          dict(a.details if details is None else details), by)
 

@@ -32,6 +32,23 @@ class UIState:
     alarm_index: int = 0                # selected alarm in the detail view
     quit: bool = False
     message: str = ""
+    #: (alarm id, action) sent and not yet reflected in the alarm state: not sent twice
+    pending: frozenset = frozenset()
+
+
+def _done(a: dict, action: str) -> bool:
+    """Whether the alarm state already shows ``action`` done."""
+    return bool(a.get("acknowledged") if action == "acknowledge"
+                else a.get("acknowledged") or a.get("audio_paused_until"))
+
+
+def _prune(pending: frozenset, view: UnitView) -> frozenset:
+    """Drop what the service has since carried out (or whose alarm is gone)."""
+    if not pending:
+        return pending
+    live = {(a.get("id") or a.get("rule")): a for b in view.beds.values() for a in b.alarms}
+    return frozenset((i, act) for i, act in pending
+                     if i in live and not _done(live[i], act))
 
 
 def handle_key(state: UIState, key: str, view: UnitView, cols: int = 2,
@@ -70,15 +87,35 @@ def handle_key(state: UIState, key: str, view: UnitView, cols: int = 2,
         bed = beds[sel]
         if not bed.alarms:
             return replace(s, selected=sel, message=f"{bed.bed}: no active alarm"), None
-        idx = s.alarm_index if s.detail else 0
-        alarm = bed.alarms[min(idx, len(bed.alarms) - 1)]
         if not operator:
             return replace(s, message="no operator name: start with --operator NAME"), None
         action = "acknowledge" if key == "a" else "pause_audio"
         word = "acknowledgement" if key == "a" else "audio pause"
-        return (replace(s, selected=sel, message=f"{word} of {alarm.get('rule')} on "
-                        f"{bed.bed} sent as {operator}"),
-                (bed.key, action, alarm.get("id") or alarm.get("rule")))
+        pending = _prune(s.pending, view)
+        s = replace(s, selected=sel, pending=pending)
+
+        def ident(a: dict) -> str:
+            return a.get("id") or a.get("rule")
+        if s.detail:                # the chosen alarm of the open bed
+            alarm = bed.alarms[min(s.alarm_index, len(bed.alarms) - 1)]
+            if _done(alarm, action):
+                return replace(s, message=f"{alarm.get('rule')} on {bed.bed} is already "
+                               + ("acknowledged" if alarm.get("acknowledged")
+                                  else "audio paused")), None
+        else:                       # the highest-priority alarm not yet dealt with
+            todo = [a for a in bed.alarms if not _done(a, action)]
+            if not todo:
+                return replace(s, message=f"{bed.bed}: every active alarm is already "
+                               + ("acknowledged" if key == "a" else
+                                  "acknowledged or audio paused")), None
+            alarm = todo[0]         # bed.alarms is sorted highest priority first
+        if (ident(alarm), action) in pending:
+            return replace(s, message=f"{word} of {alarm.get('rule')} on {bed.bed} already "
+                           "sent; waiting for the service to confirm"), None
+        return (replace(s, pending=pending | {(ident(alarm), action)},
+                        message=f"{word} of {alarm.get('rule')} "
+                        f"({alarm.get('priority', '?')}) on {bed.bed} sent as {operator}"),
+                (bed.key, action, ident(alarm)))
     return s, None
 
 

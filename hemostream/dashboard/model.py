@@ -17,6 +17,7 @@ from typing import Any
 
 from ..core.alarms import PRIORITY_RANK
 from ..core.config import DEFAULT_MAX_AGE
+from ..core.display import GROUND_TRUTH_NOTES
 from ..core.wire import is_status_topic, split_topic
 from ..core.wire import parse_time_or_none  # None when missing or without an offset
 
@@ -26,6 +27,18 @@ DERIVED_MAX_AGE = 30.0
 STRIP_SECONDS = 30 * 60
 STRIP_STEP = 30.0
 
+
+_MEAN_SRC = ("ABP_MEAN", "ABP_SYS", "NIBP_MEAN", "NIBP_SYS")
+_SYS_SRC = ("ABP_SYS", "NIBP_SYS")
+_RATE_SRC = ("HR", "PR")
+#: the measured inputs of each derived value, as groups of alternative sources
+#: (the derivations of :mod:`hemostream.core.derive`)
+DERIVED_INPUTS: dict[str, tuple[tuple[str, ...], ...]] = {
+    "MAP": (_MEAN_SRC,), "PP": (_SYS_SRC,), "SI": (_RATE_SRC, _SYS_SRC),
+    "MSI": (_RATE_SRC, _MEAN_SRC), "CI": (("CO",),), "SVR": (_MEAN_SRC, ("CVP",), ("CO",)),
+    "SVRI": (_MEAN_SRC, ("CVP",), ("CO",)), "PVR": (("PAP_MEAN",), ("PAWP",), ("CO",)),
+    "LVSWI": (_MEAN_SRC, ("PAWP",), ("CO",)), "RVSWI": (("PAP_MEAN",), ("CVP",), ("CO",)),
+}
 
 
 @dataclass
@@ -58,13 +71,24 @@ class BedState:
     def bed(self) -> str:
         return self.key.split("/", 1)[1]
 
+    def _own_stale(self, param: str, r: Reading, now: float) -> bool:
+        limit = self.max_age.get(param, DEFAULT_MAX_AGE.get(param, DERIVED_MAX_AGE))
+        return r.age(now) > limit
+
     def reading(self, param: str, now: float) -> tuple[Reading | None, bool]:
-        """(reading, stale): a value older than its expected interval is stale."""
+        """(reading, stale): a value older than its expected interval is stale; a derived
+        value is stale too once every source of one of its inputs is (a shock index is no
+        more current than the heart rate it was computed from)."""
         r = self.values.get(param)
         if r is None:
             return None, False
-        limit = self.max_age.get(param, DEFAULT_MAX_AGE.get(param, DERIVED_MAX_AGE))
-        return r, r.age(now) > limit
+        if self._own_stale(param, r, now):
+            return r, True
+        for group in DERIVED_INPUTS.get(param, ()):
+            have = [(p, self.values[p]) for p in group if p in self.values]
+            if have and all(self._own_stale(p, x, now) for p, x in have):
+                return r, True
+        return r, False
 
     def top_alarm(self) -> dict | None:
         return self.alarms[0] if self.alarms else None
@@ -116,6 +140,8 @@ class UnitView:
         elif kind == "alarm":
             self._alarm(self.bed(key), payload)
         elif kind == "note":
+            if payload.get("kind") in GROUND_TRUTH_NOTES:
+                return            # a simulator's answer key, not a clinical note
             b = self.bed(key)
             t = parse_time_or_none(payload.get("time"))
             b.notes.append({"time": t, "kind": payload.get("kind"),

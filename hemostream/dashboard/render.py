@@ -10,7 +10,7 @@ as current.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from datetime import datetime, timezone
 
 from rich.console import Group, RenderableType
@@ -18,6 +18,7 @@ from rich.panel import Panel
 from rich.table import Table
 from rich.text import Text
 
+from ..core.display import alarm_value, fmt_value, unit_of
 from ..core.rules.phrases import phrase
 from .model import BedState, UnitView
 
@@ -30,17 +31,13 @@ PRIORITY_STYLE = {"high": "red", "medium": "yellow", "low": "cyan", "info": "whi
 ARROW = {"rising": "↑", "falling": "↓", "steady": "→"}
 SPARK = "▁▂▃▄▅▆▇█"
 TILE_HEIGHT = 8
+#: a feed whose newest message is older than this is shown as lagging (project choice: the
+#: shortest maximum age of a continuous value)
+LAG_WARN_S = 10.0
 TILE_MIN_WIDTH = 38
 
-# parameter -> (label, format) for the detail table and the tiles
-FMT = {"HR": "{:.0f}", "PR": "{:.0f}", "SPO2": "{:.0f}", "RR": "{:.0f}", "TEMP": "{:.1f}",
-       "CVP": "{:.0f}", "PAWP": "{:.0f}", "CO": "{:.1f}", "CI": "{:.1f}", "SV": "{:.0f}",
-       "SVI": "{:.0f}", "SVR": "{:.0f}", "SVRI": "{:.0f}", "PVR": "{:.0f}", "SI": "{:.2f}",
-       "MSI": "{:.2f}", "BSA": "{:.2f}", "LVSWI": "{:.0f}", "RVSWI": "{:.0f}"}
-UNITS = {"HR": "/min", "PR": "/min", "RR": "/min", "SPO2": "%", "TEMP": "Cel", "CO": "L/min",
-         "CI": "L/min/m2", "SV": "mL", "SVI": "mL/m2", "SVR": "dyn.s/cm5",
-         "SVRI": "dyn.s.m2/cm5", "PVR": "dyn.s/cm5", "BSA": "m2", "LVSWI": "g.m/m2",
-         "RVSWI": "g.m/m2", "SI": "", "MSI": "", "MAP": "mm[Hg]", "PP": "mm[Hg]"}
+# one number format and unit per parameter, shared with the demo summary and the report
+FMT_VALUE, UNIT_OF = fmt_value, unit_of
 
 
 @dataclass
@@ -54,6 +51,17 @@ class Screen:
     lag_s: float | None = None
     operator: str | None = None
     message: str = ""            # last key result, e.g. "acknowledged ..."
+    #: configured unit names by id; with ``unit`` empty the header names the units seen
+    unit_names: dict = field(default_factory=dict)
+
+
+def unit_label(scr: Screen, view: UnitView) -> str:
+    """The unit(s) as the header names them: id and configured name."""
+    ids = [scr.unit] if scr.unit else sorted({k.split("/", 1)[0] for k in view.beds})
+    if not ids:
+        return "(no unit seen yet)"
+    return ", ".join(f"{u} ({scr.unit_names[u]})" if scr.unit_names.get(u) else u
+                     for u in ids)
 
 
 def fmt_age(seconds: float) -> str:
@@ -99,7 +107,7 @@ def value_text(b: BedState, param: str, now: float, show_age_after: float = 10.0
     r, stale = b.reading(param, now)
     if r is None:
         return Text("--", style="dim")
-    s = (fmt or FMT.get(param, "{:.0f}")).format(r.value)
+    s = fmt.format(r.value) if fmt else fmt_value(param, r.value)
     t = Text(s, style="dim strike" if stale else "bold")
     if b.status.get(param) and b.status[param] != "valid":
         t.append(f" {b.status[param]}", style="magenta")
@@ -235,9 +243,13 @@ def header(scr: Screen, view: UnitView, now: float) -> Text:
         if now > 0 else "--"
     conn = Text("connected", style="green") if scr.connected else \
         Text("DISCONNECTED", style="bold red reverse")
-    t = Text.assemble(("hemostream ", "bold"), (f"unit {scr.unit}", "bold cyan"), "  ", clock,
-                      "  ", conn, f"  {len(view.beds)} beds  {scr.rate:.0f} msg/s")
-    if scr.lag_s is not None:
+    if scr.connected and scr.lag_s is not None and scr.lag_s > LAG_WARN_S:
+        # connected but nothing new: a warning, where a narrow screen does not cut it
+        conn = Text(f"FEED LAGGING {fmt_age(scr.lag_s)}", style="bold yellow reverse")
+    t = Text.assemble(("hemostream ", "bold"), (f"unit {unit_label(scr, view)}", "bold cyan"), "  ", clock,
+                      "  ", conn)
+    t.append(f"  {len(view.beds)} beds  {scr.rate:.0f} msg/s")
+    if scr.lag_s is not None and scr.lag_s <= LAG_WARN_S:
         t.append(f"  lag {scr.lag_s:.1f}s")
     if scr.operator:
         t.append(f"  operator {scr.operator}", style="dim")
@@ -257,13 +269,21 @@ def footer(scr: Screen, width: int) -> Group:
     return Group(c, k)
 
 
+def _current_of(b: BedState, now: float):
+    """The bed's current (not stale) value of a parameter, or None."""
+    def current(param: str) -> float | None:
+        r, stale = b.reading(param, now)
+        return r.value if r is not None and not stale else None
+    return current
+
+
 def alarm_table(view: UnitView, now: float, rows: int, width: int) -> Table:
     t = Table(box=None, pad_edge=False, show_edge=False, header_style="bold")
     t.add_column("bed", no_wrap=True, overflow="ellipsis", min_width=8)
     t.add_column("alarm", no_wrap=True, overflow="ellipsis", min_width=24,
                  max_width=max(24, width - 30))
     t.add_column("since", no_wrap=True, min_width=8)
-    t.add_column("value", no_wrap=True, min_width=6)
+    t.add_column("now", no_wrap=True, min_width=6, overflow="ellipsis")
     items = view.alarm_list()
     if len(items) > rows:
         shown, more = items[:max(0, rows - 1)], len(items) - max(0, rows - 1)
@@ -271,10 +291,9 @@ def alarm_table(view: UnitView, now: float, rows: int, width: int) -> Table:
         shown, more = items, 0
     for b, a in shown:
         since = a.get("since")
-        v = a.get("value")
         t.add_row(b.bed, alarm_label(a),
                   fmt_age(now - since) + " ago" if isinstance(since, int | float) else "",
-                  f"{v:.3g}" if isinstance(v, int | float) else "")
+                  alarm_value(a, _current_of(b, now)))
     if not items:
         t.add_row("", Text("no active alarms", style="dim"), "", "")
     elif more:
@@ -335,8 +354,8 @@ def bed_screen(view: UnitView, scr: Screen, b: BedState, now: float, width: int,
         r, stale = b.reading(p, now)
         if r is None:
             continue
-        unit = UNITS.get(p, "mm[Hg]")
-        params.add_row(p, Text(FMT.get(p, "{:.0f}").format(r.value),
+        unit = unit_of(p)
+        params.add_row(p, Text(fmt_value(p, r.value),
                                style="dim strike" if stale else "bold"),
                        unit, ("stale " if stale else "") + fmt_age(r.age(now)),
                        b.trends.get(p, ""))

@@ -132,6 +132,29 @@ class PublishSummary:
     unreadable: int = 0
     reconnects: int = 0
     seconds: float = 0.0
+    #: sent but never acknowledged by the broker when publishing ended (given up)
+    unconfirmed: int = 0
+    gave_up: bool = False
+
+    def words(self) -> str:
+        """The counts in one sentence: what the broker acknowledged, what failed."""
+        failed = self.lines - self.published
+        return (f"{self.published} of {self.lines} messages acknowledged by the broker"
+                + (f", {failed} NOT delivered ({self.unconfirmed} sent without an "
+                   "acknowledgement)" if failed else "")
+                + ("; the rest of the recording was not sent" if self.gave_up else "")
+                + (f"; {self.resent} resent after {self.reconnects} reconnect(s)"
+                   if self.resent or self.reconnects else "")
+                + (f"; {self.unreadable} unreadable line(s) skipped" if self.unreadable
+                   else ""))
+
+
+class PublishError(TransportError):
+    """Publishing gave up; ``summary`` says what the broker had acknowledged by then."""
+
+    def __init__(self, message: str, summary: PublishSummary) -> None:
+        super().__init__(message)
+        self.summary = summary
 
 
 async def publish_recording_lines(lines_iter: Iterable[Any], url: str, speed: float | None = 1.0,
@@ -252,6 +275,11 @@ async def publish_recording_lines(lines_iter: Iterable[Any], url: str, speed: fl
             await wait_window(window - 1)
             send(rec["topic"], payload_bytes(rec["payload"]))
         await wait_window(0)
+    except TransportError as e:
+        prune()
+        summary.unconfirmed = len(unconfirmed)
+        summary.gave_up = True
+        raise PublishError(str(e), summary) from None
     finally:
         if watcher is not None:
             watcher.cancel()

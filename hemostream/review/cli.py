@@ -92,6 +92,11 @@ def cmd_report(args) -> int:
     except ConfigError as e:
         err.print(f"[bold red]invalid configuration[/]\n{e}", highlight=False)
         return 2
+    if Path(args.out).suffix.lower() not in (".html", ".htm"):
+        err.print(f"[red]error:[/] --out {args.out!r}: the report is an HTML page; give a "
+                  "name ending in .html (print it to PDF from a browser if you need one; "
+                  "--png writes every figure as PNG)", highlight=False)
+        return 2
     url = args.db or cfg.store.url
     if url.startswith("sqlite:///") and not Path(url[len("sqlite:///"):]).exists():
         err.print(f"[red]error:[/] database file {url[len('sqlite:///'):]!r} does not exist",
@@ -116,6 +121,10 @@ def cmd_report(args) -> int:
                                    t_from=t_from, t_to=t_to, png=args.png, db_label=url)
     except rep.ReportError as e:
         err.print(f"[red]error:[/] {e}", highlight=False)
+        return 1
+    except OSError as e:
+        err.print(f"[red]error:[/] --out {args.out!r}: cannot write there "
+                  f"({e.strerror or e}); give a path in a writable folder", highlight=False)
         return 1
     finally:
         engine.dispose()

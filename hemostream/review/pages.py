@@ -24,6 +24,7 @@ from typing import Any
 
 from . import CAUTION, COMPARE_CAUTION
 from . import plots
+from ..core.display import GROUND_TRUTH_NOTES, alarm_value, fmt_value
 from .limits import LimitsSource, limit_lines
 from .panels import PANEL_KEYS, PANELS, panel_data
 from .periods import PRIORITIES, time_in_state
@@ -140,6 +141,8 @@ def bed_page(bd: BedData, lim: LimitsSource, t0: float, t1: float, end: float, *
     cfg = lim.config
     shown = [p for p in bd.periods if p.start <= t1 and p.end_or(end) >= t0]
     notes_in = [n for n in bd.notes if t0 <= n["time"] <= t1]
+    # a simulator's ground-truth markers are shown on the figures, not as clinical notes
+    clinical_notes = [n for n in notes_in if n.get("kind") not in GROUND_TRUTH_NOTES]
     figs: dict[str, plots.Figures] = {}
     figs["alarms"] = plots.timeline_figure(shown, bd.info, notes_in, t0, t1, end, png=png)
     for spec in PANELS:
@@ -193,7 +196,8 @@ def bed_page(bd: BedData, lim: LimitsSource, t0: float, t1: float, end: float, *
                          escape(when(p.end)) if p.end is not None else "still active",
                          escape(span_text(p.end_or(end) - p.start)), ack,
                          escape(p.clear_reason or ""), escape(p.message),
-                         _fmt_num(p.value, 2)])
+                         escape(alarm_value({"details": p.details, "message": ""})
+                                or _fmt_num(p.value, 2))])
         parts.append(_table(["alarm", "category", "priority", "raised", "cleared", "lasted",
                              "acknowledged", "ended by", "message", "value at raise"],
                             rows, {9}))
@@ -202,14 +206,14 @@ def bed_page(bd: BedData, lim: LimitsSource, t0: float, t1: float, end: float, *
 
     # notes
     parts.append('<h2 id="notes">Notes</h2>')
-    if notes_in:
+    if clinical_notes:
         parts.append(_table(
             ["time", "kind", "channel", "volume", "over", "duration", "by", "text"],
             [[escape(when(n["time"])), escape(n["kind"]), escape(n.get("param") or ""),
               f"{n['volume_ml']:g} mL" if n.get("volume_ml") is not None else "",
               f"{n['over_min']:g} min" if n.get("over_min") is not None else "",
               f"{n['duration_s']:g} s" if n.get("duration_s") is not None else "",
-              escape(n.get("by") or ""), escape(n.get("text") or "")] for n in notes_in]))
+              escape(n.get("by") or ""), escape(n.get("text") or "")] for n in clinical_notes]))
     else:
         parts.append("<p>No notes in this period.</p>")
 
@@ -223,8 +227,9 @@ def bed_page(bd: BedData, lim: LimitsSource, t0: float, t1: float, end: float, *
             d = e.details
             rows.append([escape(when(d["bolus_time"])) if d.get("bolus_time") else "-",
                          f"{d['volume_ml']:g} mL" if d.get("volume_ml") else "-",
-                         escape(str(d.get("param") or "-")), _fmt_num(d.get("baseline"), 2),
-                         _fmt_num(d.get("after"), 2),
+                         escape(str(d.get("param") or "-")),
+                         escape(fmt_value(str(d.get("param")), d.get("baseline"))),
+                         escape(fmt_value(str(d.get("param")), d.get("after"))),
                          (f"{d['change_pct']:+.1f} %" if d.get("change_pct") is not None
                           else "-"),
                          (f"{d['cvp_change']:+.1f}" if d.get("cvp_change") is not None
@@ -284,7 +289,7 @@ def bed_page(bd: BedData, lim: LimitsSource, t0: float, t1: float, end: float, *
             inp = ", ".join(f"{escape(str(p))} at {hhmmss(float(ti))} "
                             f"({span_text(max(0.0, t - float(ti)))} before)"
                             for p, ti in inputs if isinstance(ti, int | float))
-            body.append([escape(when(t)), f"{v:.3g}" if abs(v) < 100 else f"{v:.0f}",
+            body.append([escape(when(t)), fmt_value(param, v),
                          escape(unit), inp])
         n_prov += len(body)
         more = (f" (first {cap} of {len(rows_d)}; all with "

@@ -122,6 +122,10 @@ def build_periods(rows: Iterable[Any]) -> tuple[list[AlarmPeriod], list[InfoEven
         cat = m["category"]
         tr = m["transition"]
         t = float(m["time"])
+        if cat in ALARM_CATEGORIES and m["alarm_id"] in open_:
+            # a database written before events were kept in time order: an event of an
+            # alarm never counts as earlier than the alarm's raise
+            t = max(t, open_[m["alarm_id"]].start)
         if cat not in ALARM_CATEGORIES:
             info.append(InfoEvent(m["bed_id"], t, m["rule"], tr, m["value"],
                                   _details(m["details"])))

@@ -163,6 +163,14 @@ def render(result: dict[str, Any], console) -> None:
                       + (f", kept in {c['database']}" if c.get("database") else "") + ")",
                       highlight=False)
 
+    hours = min((c["metrics"].get("bed_days") or 0) for c in result["configs"]) * 24 \
+        if result["configs"] else 0
+    nbeds = max((int(c["metrics"].get("beds") or 0) for c in result["configs"]), default=0)
+    if 0 < hours and (hours / max(1, nbeds)) < 24:
+        console.print(f"  note: per bed-day figures are extrapolated from "
+                      f"{hours:.1f} bed-hour(s) of recording (x{24 * max(1, nbeds) / hours:.0f}"
+                      " per bed); read them as rates, not counts", highlight=False)
+
     def new_table(title: str, first: str = "") -> Table:
         t = Table(title=title, title_justify="left", title_style="bold", show_edge=False)
         t.add_column(first)
