@@ -382,3 +382,23 @@ def test_compare_says_its_per_bed_day_figures_are_extrapolated():
                    str(data / "compare-hr-high-120.toml"), "--quiet", check_rc=0)
     line = next((x for x in r.stdout.splitlines() if "extrapolated" in x), "")
     assert "per bed-day figures are extrapolated from" in line and "bed-hour" in line
+
+
+def test_a_waiting_database_shows_as_a_technical_condition_in_the_header():
+    """The service's health says its database is waiting (locked or unreachable): every
+    screen's header says so, beside the connection state (issue 17: no silent stall)."""
+    from rich.console import Console
+    from hemostream.dashboard import Screen, UnitView, unit_screen
+    v = UnitView()
+    v.apply("hemo/_svc/hs-1/status", {"v": 1, "kind": "health", "instance": "hs-1",
+                                      "database": {"state": "waiting", "waiting_s": 42.0,
+                                                   "reason": "OperationalError: locked"}})
+    scr = Screen(unit="SDU7", source="test", connected=True)
+    c = Console(width=160, height=30, record=True, force_terminal=True)
+    c.print(unit_screen(v, scr, 1796112000.0, 160, 30))
+    assert "DATABASE WAITING 42s" in c.export_text()
+    v.apply("hemo/_svc/hs-1/status", {"v": 1, "kind": "health", "instance": "hs-1",
+                                      "database": {"state": "ok"}})
+    c = Console(width=160, height=30, record=True, force_terminal=True)
+    c.print(unit_screen(v, scr, 1796112000.0, 160, 30))
+    assert "DATABASE WAITING" not in c.export_text()

@@ -248,6 +248,11 @@ def header(scr: Screen, view: UnitView, now: float) -> Text:
         conn = Text(f"FEED LAGGING {fmt_age(scr.lag_s)}", style="bold yellow reverse")
     t = Text.assemble(("hemostream ", "bold"), (f"unit {unit_label(scr, view)}", "bold cyan"), "  ", clock,
                       "  ", conn)
+    db = view.service.get("database") if isinstance(view.service, dict) else None
+    if isinstance(db, dict) and db.get("state") == "waiting":
+        # a technical condition of the service itself: nothing new is being stored
+        t.append(f"  DATABASE WAITING {fmt_age(float(db.get('waiting_s') or 0))}: data not "
+                 "stored yet", style="bold cyan reverse italic")
     t.append(f"  {len(view.beds)} beds  {scr.rate:.0f} msg/s")
     if scr.lag_s is not None and scr.lag_s <= LAG_WARN_S:
         t.append(f"  lag {scr.lag_s:.1f}s")
