@@ -114,6 +114,23 @@ def _stop(svc: RunningService) -> str:
     return svc.log.read_text()
 
 
+def _pg_schema(prefix: str) -> tuple[str, str]:
+    """A fresh schema of its own in the test database, and the URL that uses it."""
+    schema = f"{prefix}_{uuid.uuid4().hex[:8]}"
+    admin = create_engine(PG)
+    with admin.begin() as c:
+        c.execute(text(f"CREATE SCHEMA {schema}"))
+    admin.dispose()
+    return schema, f"{PG}?options=-csearch_path%3D{schema}"
+
+
+def _drop_schema(schema: str) -> None:
+    admin = create_engine(PG)
+    with admin.begin() as c:
+        c.execute(text(f"DROP SCHEMA {schema} CASCADE"))
+    admin.dispose()
+
+
 @pytest.fixture(params=["sqlite", "postgresql"], scope="module")
 def service(request, broker, tmp_path_factory):  # noqa: F811
     tmp = tmp_path_factory.mktemp(f"poison-{request.param}")
@@ -121,20 +138,12 @@ def service(request, broker, tmp_path_factory):  # noqa: F811
     if request.param == "sqlite":
         db_url = f"sqlite:///{tmp / 'poison.db'}"
     else:
-        schema = f"hs_poison_{uuid.uuid4().hex[:8]}"
-        admin = create_engine(PG)
-        with admin.begin() as c:
-            c.execute(text(f"CREATE SCHEMA {schema}"))
-        admin.dispose()
-        db_url = f"{PG}?options=-csearch_path%3D{schema}"
+        schema, db_url = _pg_schema("hs_poison")
     svc = _start(broker.url(), db_url, tmp, request.param)
     yield svc
     log = _stop(svc)
     if schema:
-        admin = create_engine(PG)
-        with admin.begin() as c:
-            c.execute(text(f"DROP SCHEMA {schema} CASCADE"))
-        admin.dispose()
+        _drop_schema(schema)
     assert PATIENT not in log          # never payload content in the log at the default level
 
 
@@ -311,12 +320,7 @@ def test_content_the_database_refuses_becomes_a_reject_and_the_rest_is_stored(db
         url = f"sqlite:///{tmp_path / 'net.db'}"
         bad = _message_rows(2, 2 ** 64)
     else:
-        schema = f"hs_net_{uuid.uuid4().hex[:8]}"
-        admin = create_engine(PG)
-        with admin.begin() as c:
-            c.execute(text(f"CREATE SCHEMA {schema}"))
-        admin.dispose()
-        url = f"{PG}?options=-csearch_path%3D{schema}"
+        schema, url = _pg_schema("hs_net")
         bad = _message_rows(2, 2, f"{PATIENT}\x00")
     engine = open_engine(url)
     w = Writer(engine)
@@ -333,10 +337,7 @@ def test_content_the_database_refuses_becomes_a_reject_and_the_rest_is_stored(db
         w.close()
         engine.dispose()
         if schema:
-            admin = create_engine(PG)
-            with admin.begin() as c:
-                c.execute(text(f"DROP SCHEMA {schema} CASCADE"))
-            admin.dispose()
+            _drop_schema(schema)
 
 
 # --------------------------------------------------------------------------- a locked database

@@ -12,20 +12,13 @@ from __future__ import annotations
 import hashlib
 import json
 import logging
-import queue
-import threading
-from operator import itemgetter
-import time as _time
 from dataclasses import dataclass, field
-from typing import Any, Callable, Iterable
+from typing import Any, Iterable
 
-import weakref
-
-from sqlalchemy import create_engine, event, func, insert, select
-from sqlalchemy import exc as sa_exc
+from sqlalchemy import create_engine, event, func, select
 from sqlalchemy.engine import Engine
 
-from ..core.processor import OBSERVATION_COLUMNS, obs_identity, raw_digest
+from ..core.processor import OBSERVATION_COLUMNS, obs_identity, raw_digest  # noqa: F401
 from ..core.redact import redact
 from . import versions
 from .chunks import (Chunker, iter_derived, iter_observations,  # noqa: F401  (re-exported)
@@ -89,6 +82,11 @@ class Resume:
     retained_rejects: list[tuple[str, str]] = field(default_factory=list)
 
 
+#: rejects read back on start to know a retained one again: only small ones (a retained
+#: message is a state, not a stream), so a start reads a few MB at most, never every raw byte
+RETAINED_REJECT_BYTES = 4096
+
+
 def load_resume(engine: Engine, recent: int = 200_000) -> Resume:
     """Next ids, known beds, and the identities of the most recent messages (for dedup)."""
     m = TABLES["messages"]
@@ -104,8 +102,9 @@ def load_resume(engine: Engine, recent: int = 200_000) -> Resume:
         rows.sort(key=lambda r: r["id"])
         rj = TABLES["rejected"]
         rejects = conn.execute(
-            select(rj.c.topic, rj.c.raw).where(rj.c.size == func.length(rj.c.raw))
-            .order_by(rj.c.id.desc()).limit(10_000)).all()
+            select(rj.c.topic, rj.c.raw)
+            .where(rj.c.size == func.length(rj.c.raw), rj.c.size <= RETAINED_REJECT_BYTES)
+            .order_by(rj.c.id.desc()).limit(2_000)).all()
     known = [(r["device"], obs_identity(r["seq"], r["time"])) if r["kind"] == "obs"
              else (r["topic"], (r["kind"], r["time"], r["digest"])) for r in rows]
     return Resume(next_ids={"messages": max_id + 1,
