@@ -150,7 +150,7 @@ class Chunker:
             rows.append(chunk_row(bed_id, blk, False, 1))
         if not rows:
             return
-        conn.execute(insert(t), rows)
+        _insert(conn, rows)
         for r in rows:
             st = self.open.get(r["bed_id"])
             if st is None:
@@ -181,6 +181,14 @@ class Chunker:
         return len(beds)
 
 
+def _insert(conn: Connection, rows: list[dict[str, Any]]) -> None:
+    if conn.dialect.name == "postgresql":
+        from .pg import insert_chunks      # day partitions, COPY
+        insert_chunks(conn, rows)
+    else:
+        conn.execute(insert(TABLES["obs_chunks"]), rows)
+
+
 _M_COLS = ("id", "rx", "topic", "device", "seq", "time", "late", "n_obs")
 
 
@@ -209,7 +217,7 @@ def seal(conn: Connection, bed_id: int, final: bool = True) -> int:
                        m_time=np.array(cols[5], np.float64),
                        m_late=np.array([bool(x) for x in cols[6]], bool),
                        m_nobs=np.array(cols[7], np.int64))
-    conn.execute(insert(t), [chunk_row(bed_id, blk, final, 9 if final else 6)])
+    _insert(conn, [chunk_row(bed_id, blk, final, 9 if final else 6)])
     conn.execute(delete(t).where(t.c.id.in_([s.id for s in segs])))
     for k in range(0, len(ids), 500):
         conn.execute(delete(mt).where(mt.c.id.in_(ids[k:k + 500])))

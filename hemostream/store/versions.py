@@ -60,6 +60,9 @@ def create_at_head(engine: Engine, metadata: Any) -> None:
 
     metadata.create_all(engine)
     with engine.begin() as conn:
+        if conn.dialect.name == "postgresql":
+            from .pg import partition       # what migration 0004_pg_partitions makes
+            partition(conn)
         command.stamp(_config(conn), "head")
 
 

@@ -71,6 +71,8 @@ def write_rows(engine: Engine, rows: dict[str, list[Any]]) -> None:
     compiled by SQLAlchemy for the dialect (no per-row ORM or type-processing work; the
     values are already plain floats, ints, strings, booleans and bytes).
     """
+    if engine.dialect.name == "postgresql":
+        return _write_rows_copy(engine, rows)
     positional = engine.dialect.positional
     with engine.begin() as conn:
         for name in INSERT_ORDER:
@@ -101,6 +103,28 @@ def write_rows(engine: Engine, rows: dict[str, list[Any]]) -> None:
             else:
                 params = list(batch)
             conn.exec_driver_sql(sql, params)
+
+
+def _write_rows_copy(engine: Engine, rows: dict[str, list[Any]]) -> None:
+    """PostgreSQL: each table's batch as one ``COPY ... FROM STDIN`` (:mod:`.pg`)."""
+    from .pg import copy_rows
+
+    with engine.begin() as conn:
+        for name in INSERT_ORDER:
+            if name in CHUNKED:
+                if name == "observations" and (rows.get("observations") or rows.get("derived")):
+                    chunker(engine).write(conn, rows.get("observations") or [],
+                                          rows.get("derived") or [])
+                continue
+            batch = rows.get(name)
+            if not batch:
+                continue
+            if isinstance(batch[0], tuple):
+                copy_rows(conn, name, TUPLE_COLUMNS[name], batch)
+                continue
+            cols = tuple(batch[0])
+            copy_rows(conn, name, cols, map(itemgetter(*cols), batch) if len(cols) > 1
+                      else ((r[cols[0]],) for r in batch))
 
 
 #: how the writer waits out a database that is busy or away: first pause, longest pause
