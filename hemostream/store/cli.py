@@ -84,6 +84,9 @@ def cmd_prune(args) -> int:
     if rep.minute_stats_added:
         out.print(f"{'would add' if rep.dry_run else 'added'} {rep.minute_stats_added} "
                   "minute statistics rows", highlight=False)
+    if rep.partitions_dropped:
+        out.print(f"{'would drop' if rep.dry_run else 'dropped'} {rep.partitions_dropped} "
+                  "day partitions of obs_chunks whole", highlight=False)
     return 0
 
 

@@ -20,7 +20,7 @@
 
 from __future__ import annotations
 
-import time as _time
+import datetime as _dt
 import weakref
 from typing import Any, Iterable, Sequence
 
@@ -29,6 +29,7 @@ from sqlalchemy.engine import Connection, Engine
 
 DAY = 86400
 PARENT = "obs_chunks"
+_EPOCH = _dt.date(1970, 1, 1)
 #: an advisory-lock key: two writers creating the same day's partition take turns
 _LOCK = 0x68730001
 
@@ -51,7 +52,8 @@ def name_of(day: int) -> str:
     >>> name_of((dt.date(2026, 12, 4) - dt.date(1970, 1, 1)).days)
     'obs_chunks_d20261204'
     """
-    return PARENT + "_d" + _time.strftime("%Y%m%d", _time.gmtime(day * DAY))
+    d = _EPOCH + _dt.timedelta(days=day)
+    return f"{PARENT}_d{d.year:04d}{d.month:02d}{d.day:02d}"
 
 
 def is_partitioned(conn: Connection) -> bool:

@@ -34,10 +34,13 @@ class PruneReport:
     #: rows removed (or that would be) per table; chunked data as observations/derived
     removed: dict[str, int] = field(default_factory=dict)
     minute_stats_added: int = 0
+    #: PostgreSQL: day partitions of obs_chunks dropped whole (their chunks are in removed)
+    partitions_dropped: int = 0
 
     def as_dict(self) -> dict[str, Any]:
         return {"now": self.now, "dry_run": self.dry_run, "cutoffs": self.cutoffs,
-                "removed": self.removed, "minute_stats_added": self.minute_stats_added}
+                "removed": self.removed, "minute_stats_added": self.minute_stats_added,
+                "partitions_dropped": self.partitions_dropped}
 
 
 def minute_stats(bed_id: int, blk: dict[str, Any]) -> list[dict[str, Any]]:
@@ -90,8 +93,8 @@ def prune(engine: Engine, retention: Any, now: float | None = None,
 
     with engine.begin() as conn:
         if full is not None:
-            old = conn.execute(select(ch.c.id, ch.c.bed_id, ch.c.n_obs, ch.c.n_derived,
-                                      ch.c.m_count, ch.c.data)
+            old = conn.execute(select(ch.c.id, ch.c.bed_id, ch.c.t_min, ch.c.n_obs,
+                                      ch.c.n_derived, ch.c.m_count, ch.c.data)
                                .where(ch.c.t_max < full)).all()
             stats: list[dict] = []
             for c in old:
@@ -104,10 +107,20 @@ def prune(engine: Engine, retention: Any, now: float | None = None,
             n_msg = conn.execute(select(func.count()).select_from(msgs).where(
                 msgs.c.kind == "obs", msgs.c.time < full)).scalar()
             gone("messages", n_msg)
+            days: list[tuple[int, str]] = []
+            if conn.dialect.name == "postgresql":
+                from . import pg
+                days = pg.droppable(conn, full)
+                rep.partitions_dropped = len(days)
             if not dry_run:
                 if stats:
                     conn.execute(insert(T["minute_stats"]), stats)
                 ids = [c.id for c in old]
+                if days:                                  # whole days: drop partitions
+                    pg.drop(conn, [n for _d, n in days])
+                    pg.known(engine).forget()
+                    gone_days = {d for d, _n in days}
+                    ids = [c.id for c in old if pg.day_of(c.t_min) not in gone_days]
                 for k in range(0, len(ids), 500):
                     conn.execute(delete(ch).where(ch.c.id.in_(ids[k:k + 500])))
                 conn.execute(delete(msgs).where(msgs.c.kind == "obs", msgs.c.time < full))
@@ -159,9 +172,11 @@ def table_bytes(engine: Engine) -> dict[str, int | None]:
             got: dict[str, Any] = {r[0]: int(r[1]) for r in rows}
         elif engine.dialect.name == "postgresql":
             got = {}
-            for n in TABLES:
+            for n in TABLES:       # a partitioned table: the sum of its partitions
                 got[n] = conn.exec_driver_sql(
-                    "SELECT pg_total_relation_size(to_regclass(%(n)s))", {"n": n}).scalar()
+                    "SELECT sum(pg_total_relation_size(relid)) "
+                    "FROM pg_partition_tree(to_regclass(%(n)s))", {"n": n}).scalar()
+                got[n] = None if got[n] is None else int(got[n])
         else:
             return out
     out.update({n: got.get(n) for n in TABLES})
