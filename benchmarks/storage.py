@@ -2,6 +2,7 @@
 
     python -m benchmarks.storage                    # 24 beds x 30 min of 1 Hz, 10 obs/message
     python -m benchmarks.storage --beds 24 --seconds 3600 --out /tmp/storage.json
+    python -m benchmarks.storage --pg               # PostgreSQL too (127.0.0.1:5432/test)
 
 The recording is benchmarks/make_load.py's (the replay figure's shape: one admit per bed, then
 every bed every second, 10 observations per message). ``hemostream replay`` writes a fresh
@@ -73,6 +74,46 @@ def measure(work: Path, beds: int, seconds: int, repeats: int) -> dict:
     }
 
 
+PG = "postgresql+psycopg://127.0.0.1:5432/test"
+
+
+def measure_pg(work: Path, beds: int, seconds: int, base_url: str = PG) -> dict:
+    """The same recording replayed into a fresh PostgreSQL schema; its size (every table,
+    partitions and indexes and TOAST included: pg_total_relation_size) after a VACUUM, so
+    dead rows of merged segments do not count, scaled to a bed-day."""
+    import uuid
+
+    from sqlalchemy import create_engine, text
+
+    rec = work / "storage.jsonl"
+    if not rec.exists():
+        make_load.write(str(rec), beds, seconds)
+    schema = f"hs_bench_{uuid.uuid4().hex[:8]}"
+    admin = create_engine(base_url, isolation_level="AUTOCOMMIT")
+    with admin.connect() as c:
+        c.execute(text(f"CREATE SCHEMA {schema}"))
+    url = f"{base_url}?options=-csearch_path%3D{schema}"
+    try:
+        m = run_measured([PY, "-m", "hemostream.cli", "replay", str(rec), "--db", url,
+                          "--json"]).check()
+        from hemostream.store import open_engine
+        from hemostream.store.retention import table_bytes
+        eng = open_engine(url, create=False)
+        with eng.connect().execution_options(isolation_level="AUTOCOMMIT") as c:
+            c.exec_driver_sql("VACUUM")
+        sizes = {k: v for k, v in table_bytes(eng).items() if v}
+        eng.dispose()
+    finally:
+        with admin.connect() as c:
+            c.execute(text(f"DROP SCHEMA {schema} CASCADE"))
+        admin.dispose()
+    total = sum(sizes.values())
+    per_day = total / (beds * seconds / 86400.0)
+    return {"database_bytes": total, "bytes_per_bed_day": round(per_day),
+            "mb_per_bed_day": round(per_day / 1e6, 2), "tables_bytes": sizes,
+            "replay_seconds": round(m.seconds, 3)}
+
+
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--beds", type=int, default=24)
@@ -80,9 +121,14 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--repeats", type=int, default=2)
     ap.add_argument("--out", help="write the figures as JSON here")
     ap.add_argument("--workdir")
+    ap.add_argument("--pg", nargs="?", const=PG, metavar="URL",
+                    help="also replay into a fresh schema of this PostgreSQL database "
+                         f"(default {PG})")
     a = ap.parse_args(argv)
     with tempfile.TemporaryDirectory(dir=a.workdir) as d:
         r = measure(Path(d), a.beds, a.seconds, a.repeats)
+        if a.pg:
+            r["postgresql"] = measure_pg(Path(d), a.beds, a.seconds, a.pg)
     text = json.dumps(r, indent=2)
     print(text)
     if a.out:

@@ -174,8 +174,9 @@ def table_bytes(engine: Engine) -> dict[str, int | None]:
             got = {}
             for n in TABLES:       # a partitioned table: the sum of its partitions
                 got[n] = conn.exec_driver_sql(
-                    "SELECT sum(pg_total_relation_size(relid)) "
-                    "FROM pg_partition_tree(to_regclass(%(n)s))", {"n": n}).scalar()
+                    "SELECT coalesce((SELECT sum(pg_total_relation_size(relid)) FROM "
+                    "pg_partition_tree(r)), pg_total_relation_size(r)) "
+                    "FROM to_regclass(%(n)s) r", {"n": n}).scalar()
                 got[n] = None if got[n] is None else int(got[n])
         else:
             return out
