@@ -102,6 +102,12 @@ def measure_pg(work: Path, beds: int, seconds: int, base_url: str = PG) -> dict:
         with eng.connect().execution_options(isolation_level="AUTOCOMMIT") as c:
             c.exec_driver_sql("VACUUM")
         sizes = {k: v for k, v in table_bytes(eng).items() if v}
+        # the live rows alone (VACUUM FULL rewrites every table): what a long run's tables
+        # approach per bed-day, the space of rows already deleted (observation messages
+        # moved into sealed chunks, merged segments) being reused after autovacuum
+        with eng.connect().execution_options(isolation_level="AUTOCOMMIT") as c:
+            c.exec_driver_sql("VACUUM FULL")
+        live = {k: v for k, v in table_bytes(eng).items() if v}
         eng.dispose()
     finally:
         with admin.connect() as c:
@@ -109,8 +115,10 @@ def measure_pg(work: Path, beds: int, seconds: int, base_url: str = PG) -> dict:
         admin.dispose()
     total = sum(sizes.values())
     per_day = total / (beds * seconds / 86400.0)
+    live_day = sum(live.values()) / (beds * seconds / 86400.0)
     return {"database_bytes": total, "bytes_per_bed_day": round(per_day),
             "mb_per_bed_day": round(per_day / 1e6, 2), "tables_bytes": sizes,
+            "live_mb_per_bed_day": round(live_day / 1e6, 2), "live_tables_bytes": live,
             "replay_seconds": round(m.seconds, 3)}
 
 

@@ -156,8 +156,9 @@ def write(rows_iter, fmt: str, stream: IO[str] = sys.stdout, console=None,
           kind: str | None = None) -> int:
     n = 0
     if fmt == "jsonl":
+        enc = json.JSONEncoder(separators=(",", ":"), default=str).encode   # made once
         for r in rows_iter:
-            stream.write(json.dumps(r, separators=(",", ":"), default=str) + "\n")
+            stream.write(enc(r) + "\n")
             n += 1
         return n
     if fmt == "csv":

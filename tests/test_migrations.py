@@ -96,3 +96,8 @@ def test_migrations_ship_inside_the_package():
     assert versions.MIGRATIONS.parent.name == "hemostream"
     assert sorted(p.name[:4] for p in (versions.MIGRATIONS / "versions").glob("0*.py")) == [
         "0001", "0002", "0003", "0004"]
+
+
+def test_head_read_from_the_files_is_alembics():
+    from alembic.script import ScriptDirectory
+    assert versions.head() == ScriptDirectory.from_config(versions._config()).get_current_head()

@@ -14,8 +14,10 @@ order of the old one-row-per-observation table (by time, then insertion); derive
 
 from __future__ import annotations
 
-import heapq
+import bisect
 import json
+from itertools import repeat
+from operator import itemgetter
 from typing import Any, Iterable, Iterator, Sequence
 
 import numpy as np
@@ -122,8 +124,8 @@ def chunk_row(bed_id: int, blk: dict[str, Any], sealed: bool, level: int) -> dic
             "sealed": sealed, "data": codec.encode(blk, level=level, perm=PERM)}
 
 
-def decode(data: bytes) -> dict[str, Any]:
-    return codec.decode(data)
+def decode(data: bytes, columns: Any = None) -> dict[str, Any]:
+    return codec.decode(data, columns)
 
 
 class Chunker:
@@ -234,7 +236,7 @@ def sealed_messages(conn: Connection, min_mid: int | None = None,
     if bed_ids is not None:
         stmt = stmt.where(t.c.bed_id.in_(list(bed_ids)))
     for c in conn.execute(stmt.order_by(t.c.id)):
-        b = decode(c.data)
+        b = decode(c.data, "m_")
         for mid, rx, topic, dev, seq, tm, late, n in zip(
                 b["m_id"].tolist(), b["m_rx"].tolist(), b["m_topic"], b["m_device"],
                 b["m_seq"].tolist(), b["m_time"].tolist(), b["m_late"].tolist(),
@@ -263,15 +265,21 @@ def _chunks(conn: Connection, bed_ids: Iterable[int] | None, t0: float | None,
 
 
 def _merge_rows(chunks: Sequence[Any], rows_of) -> Iterator[tuple]:
-    """Rows (sort key first) of chunks sorted by t_min, merged into one ordered stream."""
-    heap: list[tuple] = []
+    """Rows (sort key first) of chunks sorted by t_min, merged into one ordered stream.
+
+    Rows earlier than the next chunk's t_min cannot be overtaken and go out; the rest wait,
+    sorted (each chunk's rows are nearly in order already, so the sorts are merges)."""
+    pending: list[tuple] = []
+    first = itemgetter(0)
     for c in chunks:
-        while heap and heap[0][0] < c.t_min:
-            yield heapq.heappop(heap)
-        for r in rows_of(c):
-            heapq.heappush(heap, r)
-    while heap:
-        yield heapq.heappop(heap)
+        if pending:
+            k = bisect.bisect_left(pending, c.t_min, key=first)
+            if k:
+                yield from pending[:k]
+                del pending[:k]
+        pending.extend(rows_of(c))
+        pending.sort()
+    yield from pending
 
 
 def iter_observations(conn: Connection, bed_ids: Iterable[int] | None = None,
@@ -282,20 +290,27 @@ def iter_observations(conn: Connection, bed_ids: Iterable[int] | None = None,
     want = set(params) if params is not None else None
 
     def rows_of(c):
-        b = decode(c.data)
+        b = decode(c.data, "o_")
         raw = b["o_value"].copy()
         raw[b["o_conv"]] = b["o_raw"]
-        cols = (b["o_time"].tolist(), b["o_mid"].tolist(), b["o_param"],
-                b["o_value"].tolist(), b["o_unit"], b["o_status"], raw.tolist(),
-                b["o_raw_unit"], b["o_late"].tolist())
-        out = []
-        for k, (t, mid, p, v, u, s, rv, ru, late) in enumerate(zip(*cols)):
-            if want is not None and p not in want:
-                continue
-            if (t0 is not None and t < t0) or (t1 is not None and t > t1):
-                continue
-            out.append((t, mid, k, c.bed_id, p, v, u, s, rv, ru, late))
-        return out
+        t = b["o_time"]
+        sel = np.ones(len(t), bool)         # the asked parameters and times, as arrays
+        if want is not None:
+            sel &= np.isin(np.array(b["o_param"], dtype=object), list(want))
+        if t0 is not None:
+            sel &= t >= t0
+        if t1 is not None:
+            sel &= t <= t1
+        idx = np.flatnonzero(sel)
+        ks = idx.tolist()
+
+        def pick(col: list) -> list:
+            return [col[k] for k in ks]
+
+        return list(zip(t[idx].tolist(), b["o_mid"][idx].tolist(), ks,
+                        repeat(c.bed_id, len(ks)), pick(b["o_param"]),
+                        b["o_value"][idx].tolist(), pick(b["o_unit"]), pick(b["o_status"]),
+                        raw[idx].tolist(), pick(b["o_raw_unit"]), b["o_late"][idx].tolist()))
 
     for r in _merge_rows(_chunks(conn, bed_ids, t0, t1, "obs"), rows_of):
         yield (r[0], r[1]) + r[3:]
@@ -308,7 +323,7 @@ def iter_derived(conn: Connection, bed_ids: Iterable[int] | None = None,
     want = set(params) if params is not None else None
 
     def rows_of(c):
-        b = decode(c.data)
+        b = decode(c.data, "d_")
         out = []
         for t, q, p, v, u, it in zip(b["d_time"].tolist(), b["d_seq"].tolist(), b["d_param"],
                                      b["d_value"].tolist(), b["d_unit"], b["d_inputs_text"]):

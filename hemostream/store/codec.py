@@ -112,18 +112,35 @@ def _codes(col: list) -> tuple[list, np.ndarray]:
     return list(index), codes
 
 
-def decode(data: bytes) -> dict[str, Any]:
+def decode(data: bytes, columns: Any = None) -> dict[str, Any]:
+    """The block of ``data``; ``columns``: only these (a container of names, or a prefix
+    string such as ``"o_"``), to read less of a chunk."""
     if data[:4] != MAGIC:
         raise ValueError("not an observation chunk")
     raw = zlib.decompress(data[4:])
     (hl,) = struct.unpack_from("<I", raw)
     meta = json.loads(raw[4:4 + hl])
     pos = 4 + hl
+    if columns is not None:
+        def wanted(c: str) -> bool:
+            return c.startswith(columns) if isinstance(columns, str) else c in columns
+        keep = {m["c"] for m in meta if wanted(m["c"])}
+        keep |= {m["p"] for m in meta if m["c"] in keep and "p" in m}
+        starts = []
+        for m in meta:
+            starts.append(pos)
+            pos += m["z"]
+        pairs = [(m, p) for m, p in zip(meta, starts) if m["c"] in keep]
+    else:
+        pairs = []
+        for m in meta:
+            pairs.append((m, pos))
+            pos += m["z"]
     out: dict[str, Any] = {}
+    codes_of: dict[str, np.ndarray] = {}      # text columns' indexes (first-seen order)
     sorted_by: list[tuple[str, str]] = []
-    for m in meta:
+    for m, pos in pairs:
         b = raw[pos:pos + m["z"]]
-        pos += m["z"]
         n, e = m["n"], m["e"]
         v: Any
         if e == "fd":
@@ -144,12 +161,17 @@ def decode(data: bytes) -> dict[str, Any]:
         else:
             d = m["d"]
             codes = np.frombuffer(b, np.uint16 if len(d) > 255 else np.uint8)
-            v = [d[c] for c in codes.tolist()]
+            codes_of[m["c"]] = codes
+            v = np.array(d, dtype=object)[codes].tolist() if d else []
         if "p" in m:
             sorted_by.append((m["c"], m["p"]))
         out[m["c"]] = v
     for name, key in sorted_by:
-        order = np.argsort(_codes(out[key])[1], kind="stable")
+        # the dictionary is in first-seen order, so the stored indexes are _codes' own
+        key_codes = codes_of.get(key)
+        if key_codes is None:
+            key_codes = _codes(out[key])[1]
+        order = np.argsort(key_codes, kind="stable")
         v = np.empty_like(out[name])
         v[order] = out[name]
         out[name] = v
