@@ -97,6 +97,9 @@ def test_upgrade_from_0003_partitions_every_row(midnight, pg_url, tmp_path):
     src = open_engine(lite, create=False)
     dst = create_engine(pg_url)
     Base.metadata.create_all(dst)            # the 0003 tables, obs_chunks not partitioned
+    with dst.begin() as d:                   # and without the indexes of 0005
+        for ix in ("ix_obs_chunks_bed_sealed", "ix_obs_chunks_mid_max", "ix_obs_chunks_seq_max"):
+            d.exec_driver_sql(f"DROP INDEX {ix}")
     with src.connect() as s, dst.begin() as d:
         for name in ("beds", "messages", "obs_chunks", "admissions", "notes", "commands",
                      "rejected", "alarm_events", "config_snapshots", "minute_stats"):
@@ -113,6 +116,12 @@ def test_upgrade_from_0003_partitions_every_row(midnight, pg_url, tmp_path):
     assert versions.upgrade(pg_url, Base.metadata) == ("0003", versions.head())
     assert sorted(_days(pg_url))[:2] == [pg.day_of(T0), pg.day_of(T0) + 1]
     a = open_engine(pg_url)
+    with a.connect() as c:                   # every index on the partitioned table
+        ixs = {r[0] for r in c.exec_driver_sql(
+            "SELECT indexname FROM pg_indexes WHERE tablename = 'obs_chunks' "
+            "AND schemaname = current_schema()")}
+    assert ixs == {"pk_obs_chunks", "ix_obs_chunks_bed_time", "ix_obs_chunks_bed_sealed",
+                   "ix_obs_chunks_mid_max", "ix_obs_chunks_seq_max"}
     for kind in ("observations", "derived", "admissions"):
         assert list(query.rows(a, kind)) == list(query.rows(src, kind)), kind
     assert message_count(a) == message_count(src)

@@ -138,14 +138,19 @@ def partition(conn: Connection) -> None:
     if is_partitioned(conn):
         return
     x = conn.exec_driver_sql
+    indexes = x("SELECT i.relname, pg_get_indexdef(i.oid) FROM pg_index x "
+                "JOIN pg_class i ON i.oid = x.indexrelid WHERE x.indrelid = "
+                "to_regclass(%(n)s) AND NOT x.indisprimary", {"n": PARENT}).all()
     x(f"ALTER TABLE {PARENT} RENAME TO {PARENT}_plain")
-    x("ALTER INDEX ix_obs_chunks_bed_time RENAME TO ix_obs_chunks_plain_bed_time")
+    for name, _ in indexes:
+        x(f'ALTER INDEX "{name}" RENAME TO "{name}_plain"')
     seq = x(f"SELECT pg_get_serial_sequence('{PARENT}_plain', 'id')").scalar()
     x(f"CREATE TABLE {PARENT} (LIKE {PARENT}_plain INCLUDING DEFAULTS, "
       f"CONSTRAINT pk_{PARENT} PRIMARY KEY (id, t_min), "
       f"CONSTRAINT fk_{PARENT}_bed FOREIGN KEY (bed_id) REFERENCES beds (id)) "
       f"PARTITION BY RANGE (t_min)")
-    x(f"CREATE INDEX ix_obs_chunks_bed_time ON {PARENT} (bed_id, t_min)")
+    for _, ddl in indexes:      # the same definitions, now on the partitioned table
+        x(ddl)
     lo, hi = x(f"SELECT min(t_min), max(t_min) FROM {PARENT}_plain").one()
     if lo is not None:
         create_days(conn, range(day_of(lo), day_of(hi) + 2))

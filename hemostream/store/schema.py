@@ -165,7 +165,12 @@ class ObsChunk(Base):
     seq_max: Mapped[int | None] = mapped_column(BigInteger)
     sealed: Mapped[bool] = mapped_column(Boolean)
     data: Mapped[bytes] = mapped_column(LargeBinary)
-    __table_args__ = (Index("ix_obs_chunks_bed_time", "bed_id", "t_min"),)
+    __table_args__ = (Index("ix_obs_chunks_bed_time", "bed_id", "t_min"),
+                      # a bed's open segments, the newest ids: found without reading every
+                      # chunk row (each is a page or more of data) on a database of months
+                      Index("ix_obs_chunks_bed_sealed", "bed_id", "sealed"),
+                      Index("ix_obs_chunks_mid_max", "mid_max"),
+                      Index("ix_obs_chunks_seq_max", "seq_max"))
 
 
 class MinuteStat(Base):
