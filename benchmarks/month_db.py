@@ -155,6 +155,7 @@ def measure(work: Path, beds: int, days: int, seconds: int, repeats: int) -> dic
             "cost_ratio": round(ratio, 3), "target_ratio": TARGET_RATIO,
             "pass_ratio": ratio <= TARGET_RATIO,
             "query_seconds": round(qs, 3), "query_rows": rows,
+            "query_cpu_seconds": round(min(m.user_s + m.sys_s for m in q), 3),
             "target_query_s": TARGET_QUERY_S, "pass_query": qs < TARGET_QUERY_S,
             "load_average": load_average()}
 
