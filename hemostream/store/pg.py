@@ -180,7 +180,7 @@ def drop(conn: Connection, names: Sequence[str]) -> None:
 # --------------------------------------------------------------------------- COPY
 
 
-def _sa_error(conn: Connection, sql: str, e: Exception) -> sa_exc.DBAPIError:
+def _sa_error(conn: Connection, sql: str, e: Any) -> sa_exc.StatementError:
     """A psycopg error as the SQLAlchemy exception ``execute`` would have raised; a lost
     connection is invalidated so the pool does not hand it out again."""
     dialect = conn.dialect

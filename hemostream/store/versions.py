@@ -42,7 +42,8 @@ def head() -> str:
     the migration files' assignments (a start-up need not import Alembic;
     tests/test_migrations.py holds it to Alembic's own answer)."""
     if not _HEAD:
-        revs, downs = set(), set()
+        revs: set[str] = set()
+        downs: set[str] = set()
         for f in (MIGRATIONS / "versions").glob("*.py"):
             for key, val in _REV.findall(f.read_text(encoding="utf-8")):
                 (revs if key == "revision" else downs).add(val)
