@@ -75,10 +75,17 @@ def encode(block: dict[str, Any], level: int = 6, perm: dict[str, str] | None = 
     """Bytes of ``block``; ``perm`` maps a float column to the text column it is sorted by."""
     perm = perm or {}
     meta, parts = [], []
+    seen: dict[str, tuple[list, np.ndarray]] = {}     # each text column's codes, made once
+
+    def codes(name: str) -> tuple[list, np.ndarray]:
+        if name not in seen:
+            seen[name] = _codes(block[name])
+        return seen[name]
+
     for name, col in block.items():
         if isinstance(col, np.ndarray) and col.dtype.kind == "f":
             if name in perm:
-                key = np.asarray(_codes(block[perm[name]])[1])
+                key = np.asarray(codes(perm[name])[1])
                 order = np.argsort(key, kind="stable")
                 m, b = _float_col(col[order])
                 m["p"] = perm[name]
@@ -93,9 +100,9 @@ def encode(block: dict[str, Any], level: int = 6, perm: dict[str, str] | None = 
             lens = np.array([len(x) for x in enc], np.int64)
             m, b = {"e": "t", "L": len(lens) * 8}, _shuffle(lens) + b"".join(enc)
         else:
-            uniq, codes = _codes(col)
-            m, b = {"e": "s", "d": uniq}, codes.astype(np.uint16 if len(uniq) > 255
-                                                        else np.uint8).tobytes()
+            uniq, idx = codes(name)
+            m, b = {"e": "s", "d": uniq}, idx.astype(np.uint16 if len(uniq) > 255
+                                                      else np.uint8).tobytes()
         m["c"], m["n"], m["z"] = name, len(col), len(b)
         meta.append(m)
         parts.append(b)
@@ -107,9 +114,15 @@ _CODE_CACHE: dict[int, tuple[list, np.ndarray]] = {}
 
 
 def _codes(col: list) -> tuple[list, np.ndarray]:
-    index: dict[Any, int] = {}
-    codes = np.fromiter((index.setdefault(v, len(index)) for v in col), np.int64, len(col))
-    return list(index), codes
+    """The distinct values in first-seen order, and each value's index among them.
+
+    >>> d, c = _codes(["HR", "CVP", "HR", None])
+    >>> d, c.tolist()
+    (['HR', 'CVP', None], [0, 1, 0, 2])
+    """
+    uniq = list(dict.fromkeys(col))
+    index = {v: i for i, v in enumerate(uniq)}
+    return uniq, np.fromiter(map(index.__getitem__, col), np.int64, len(col))
 
 
 def decode(data: bytes, columns: Any = None) -> dict[str, Any]:
