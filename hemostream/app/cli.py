@@ -176,8 +176,19 @@ def cmd_query(args) -> int:
         return 2
     try:
         engine = open_engine(url, create=False)
-        n = query.write(query.rows(engine, args.kind, args.bed, args.param, since, args.limit),
-                        args.format, kind=args.kind)
+        quality = None
+        if args.quality:
+            from ..core.quality import QUALITIES
+            quality = [q.strip() for q in args.quality.split(",") if q.strip()]
+            bad = [q for q in quality if q not in QUALITIES]
+            if bad or args.kind not in ("observations", "derived"):
+                err.print(f"[red]error:[/] --quality: " + (
+                    f"unknown {', '.join(map(repr, bad))}; one or more (comma-separated) of "
+                    f"{', '.join(QUALITIES)}" if bad else
+                    "applies to observations and derived values only"), highlight=False)
+                return 2
+        n = query.write(query.rows(engine, args.kind, args.bed, args.param, since, args.limit,
+                                   quality), args.format, kind=args.kind)
     except StoreError as e:
         err.print(f"[red]error:[/] {e}", highlight=False)
         return 1
@@ -440,6 +451,9 @@ def add_store_parsers(sub) -> None:
     q.add_argument("--param", metavar="P", help="parameter (or rule id for alarms)")
     q.add_argument("--since", metavar="TIME", help="RFC 3339 time, e.g. 2026-12-01T08:00:00Z")
     q.add_argument("--limit", type=non_negative_int, metavar="N", help="at most N rows")
+    q.add_argument("--quality", metavar="Q[,Q]", help="observations and derived values of "
+                   "these qualities only: ok, questionable, artifact, calibrating, test, "
+                   "invalid (e.g. --quality ok)")
     q.add_argument("--format", choices=("table", "jsonl", "csv"), default="table")
     q.set_defaults(func=cmd_query)
 

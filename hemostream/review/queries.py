@@ -113,7 +113,7 @@ def load_bed(engine, bed: BedInfo, t0: float, t1: float, obs_params: list[str],
         for t, _m, _b, param, value, _u, status, *_ in iter_observations(
                 conn, [bed.id], obs_params, t0 - margin, t1 + margin):
             bd.obs.setdefault(param, []).append((t, value, status))
-        for t, _q, _b, param, value, unit, text in iter_derived(
+        for t, _q, _b, param, value, unit, text, _quality in iter_derived(
                 conn, [bed.id], der_params, t0 - margin, t1 + margin):
             try:
                 inputs = json.loads(text)
