@@ -25,6 +25,7 @@ from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
 from rich.table import Table
 
 from .. import CAUTION, query
+from ..core.quality import QUALITIES
 from ..config import (check_config_file, load_for_command,
                       with_overrides)
 from ..core.config import Config
@@ -178,7 +179,6 @@ def cmd_query(args) -> int:
         engine = open_engine(url, create=False)
         quality = None
         if args.quality:
-            from ..core.quality import QUALITIES
             quality = [q.strip() for q in args.quality.split(",") if q.strip()]
             bad = [q for q in quality if q not in QUALITIES]
             if bad or args.kind not in ("observations", "derived"):

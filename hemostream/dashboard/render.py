@@ -5,7 +5,9 @@ low cyan). A new (unacknowledged) alarm is drawn bold and blinking; an acknowled
 steady and dim, an audio-paused one with a "paused" mark; technical conditions are labelled
 "technical" and drawn in italics so they read differently from physiological ones. Values
 older than their expected interval are drawn dim and struck through with their age, never
-as current.
+as current; a value whose quality is not ``ok`` (an artifact: a closed line during a sample
+draw, a flush, a zeroing; a device status such as ``calibrating``) is drawn dim and in
+italics with its quality and reason, never as a plain current number.
 """
 
 from __future__ import annotations
@@ -108,6 +110,9 @@ def value_text(b: BedState, param: str, now: float, show_age_after: float = 10.0
     if r is None:
         return Text("--", style="dim")
     s = fmt.format(r.value) if fmt else fmt_value(param, r.value)
+    mark = b.mark(param)
+    if mark is not None:
+        return _marked(s, mark)
     t = Text(s, style="dim strike" if stale else "bold")
     if b.status.get(param) and b.status[param] != "valid":
         t.append(f" {b.status[param]}", style="magenta")
@@ -119,6 +124,13 @@ def value_text(b: BedState, param: str, now: float, show_age_after: float = 10.0
     elif r.age(now) >= show_age_after:
         t.append(f" {fmt_age(r.age(now))}", style="dim")
     return t
+
+
+def _marked(s: str, mark: tuple[str, str]) -> Text:
+    """A value that is not ok: dim, in italics, with its quality and reason."""
+    q, why = mark
+    return Text.assemble((s, "dim italic"), (f" {q}" + (f": {why}" if why else ""),
+                                             "magenta dim"))
 
 
 def pressure_text(b: BedState, now: float) -> Text:
@@ -135,6 +147,9 @@ def pressure_text(b: BedState, now: float) -> Text:
         txt = f"{rs.value:.0f}/{rd.value:.0f}" if rd is not None else f"{rs.value:.0f}/--"
         if mean is not None:
             txt += f" ({mean:.0f})"
+        mark = b.mark(s) or b.mark(d) or b.mark(m)
+        if mark is not None:
+            return Text.assemble((f"{label} ", "dim"), _marked(txt, mark))
         t = Text.assemble((f"{label} ", "dim"), (txt, "dim strike" if stale else "bold"))
         arrow = ARROW.get(b.trends.get("MAP", ""), "")
         if arrow and not stale:
@@ -278,7 +293,7 @@ def _current_of(b: BedState, now: float):
     """The bed's current (not stale) value of a parameter, or None."""
     def current(param: str) -> float | None:
         r, stale = b.reading(param, now)
-        return r.value if r is not None and not stale else None
+        return r.value if r is not None and not stale and r.quality == "ok" else None
     return current
 
 
@@ -360,10 +375,11 @@ def bed_screen(view: UnitView, scr: Screen, b: BedState, now: float, width: int,
         if r is None:
             continue
         unit = unit_of(p)
-        params.add_row(p, Text(fmt_value(p, r.value),
-                               style="dim strike" if stale else "bold"),
-                       unit, ("stale " if stale else "") + fmt_age(r.age(now)),
-                       b.trends.get(p, ""))
+        mark = b.mark(p)
+        value = (_marked(fmt_value(p, r.value), mark) if mark is not None else
+                 Text(fmt_value(p, r.value), style="dim strike" if stale else "bold"))
+        params.add_row(p, value, unit, ("stale " if stale else "") + fmt_age(r.age(now)),
+                       b.trends.get(p, "") if mark is None else "")
     alarms = Table(box=None, header_style="bold", pad_edge=False, expand=True)
     alarms.add_column("", width=1)
     alarms.add_column("active alarm", no_wrap=True, overflow="ellipsis")

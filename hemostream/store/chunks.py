@@ -23,16 +23,18 @@ from sqlalchemy import delete, func, insert, select
 from sqlalchemy.engine import Connection
 
 from ..core.outputs import inputs_json
-from ..core.quality import OK
+from ..core.quality import OK, from_status
 from . import codec
 from .schema import TABLES
 
 OBS_COLS = ("o_mid", "o_param", "o_time", "o_value", "o_unit", "o_conv", "o_raw",
             "o_raw_unit", "o_status", "o_late", "o_quality")
 DER_COLS = ("d_seq", "d_param", "d_time", "d_value", "d_unit", "d_inputs_text", "d_quality")
-#: quality columns (core/quality.py): present in a block only when some value is not ok;
-#: a block without one (every chunk written before quality existed, too) is all ok
-QUALITY_COLS = {"o_quality": "o_mid", "d_quality": "d_seq"}
+#: quality columns (core/quality.py), present in a block only when needed: observations
+#: when some value's quality is not the one its status gives (an artifact), derived values
+#: when some is not ok. Without one (every chunk written before quality existed, too) an
+#: observation's quality is its status's and a derived value is ok.
+QUALITY_COLS = ("o_quality", "d_quality")
 PERM = {"o_value": "o_param", "d_value": "d_param"}
 
 #: defaults of [store] chunk_messages / chunk_segments (the writer reads the configuration)
@@ -76,7 +78,7 @@ def block_of(obs: list[tuple], der: list[dict], seq0: int) -> dict[str, Any]:
     blk: dict[str, Any] = {}
     if obs:
         mid, _bed, param, t, value, unit, raw, raw_unit, status, late = list(zip(*obs))[:10]
-        quality = [o[10] if len(o) > 10 else OK for o in obs]
+        quality = [o[10] if len(o) > 10 else from_status(o[8]) for o in obs]
         v = np.array(value, f8)
         r = np.array(raw, f8)
         conv = v.view(i8) != r.view(i8)
@@ -84,7 +86,7 @@ def block_of(obs: list[tuple], der: list[dict], seq0: int) -> dict[str, Any]:
                    o_value=v, o_unit=list(unit), o_conv=conv, o_raw=r[conv],
                    o_raw_unit=list(raw_unit), o_status=list(status),
                    o_late=np.array(late, bool))
-        if any(q != OK for q in quality):
+        if any(q != from_status(s) for q, s in zip(quality, status)):
             blk["o_quality"] = quality
     if der:
         times = [d["time"] for d in der]
@@ -104,9 +106,7 @@ def merge(blocks: Sequence[dict[str, Any]]) -> dict[str, Any]:
     names = [n for b in blocks for n in b]
     for name in dict.fromkeys(names):
         if name in QUALITY_COLS:
-            key = QUALITY_COLS[name]
-            out[name] = [x for b in blocks
-                         for x in (b[name] if name in b else [OK] * len(b.get(key, ())))]
+            out[name] = [x for b in blocks for x in _quality(b, name[0])]
             continue
         parts = [b[name] for b in blocks if name in b]
         if isinstance(parts[0], np.ndarray):
@@ -114,6 +114,16 @@ def merge(blocks: Sequence[dict[str, Any]]) -> dict[str, Any]:
         else:
             out[name] = [x for p in parts for x in p]
     return out
+
+
+def _quality(b: dict[str, Any], kind: str) -> list[str]:
+    """A block's observation (``kind`` "o") or derived ("d") qualities."""
+    q = b.get(f"{kind}_quality")
+    if q is not None:
+        return q
+    if kind == "o":
+        return [from_status(s) for s in b.get("o_status", ())]
+    return [OK] * len(b.get("d_seq", ()))
 
 
 def chunk_row(bed_id: int, blk: dict[str, Any], sealed: bool, level: int) -> dict[str, Any]:
@@ -294,10 +304,9 @@ def iter_observations(conn: Connection, bed_ids: Iterable[int] | None = None,
         b = decode(c.data)
         raw = b["o_value"].copy()
         raw[b["o_conv"]] = b["o_raw"]
-        n = len(b["o_mid"])
         cols = (b["o_time"].tolist(), b["o_mid"].tolist(), b["o_param"],
                 b["o_value"].tolist(), b["o_unit"], b["o_status"], raw.tolist(),
-                b["o_raw_unit"], b["o_late"].tolist(), b.get("o_quality") or [OK] * n)
+                b["o_raw_unit"], b["o_late"].tolist(), _quality(b, "o"))
         out = []
         for k, (t, mid, p, v, u, s, rv, ru, late, q) in enumerate(zip(*cols)):
             if want is not None and p not in want:
@@ -325,7 +334,7 @@ def iter_derived(conn: Connection, bed_ids: Iterable[int] | None = None,
     def rows_of(c):
         b = decode(c.data)
         out = []
-        dq = b.get("d_quality") or [OK] * len(b["d_seq"])
+        dq = _quality(b, "d")
         for t, sq, p, v, u, it, q in zip(b["d_time"].tolist(), b["d_seq"].tolist(),
                                          b["d_param"], b["d_value"].tolist(), b["d_unit"],
                                          b["d_inputs_text"], dq):
