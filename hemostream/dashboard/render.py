@@ -368,7 +368,7 @@ def bed_screen(view: UnitView, scr: Screen, b: BedState, now: float, width: int,
                alarm_index: int = 0) -> RenderableType:
     """One bed: every parameter with age and trend, its alarms, history and notes."""
     params = Table(box=None, header_style="bold", pad_edge=False)
-    for col in ("param", "value", "unit", "age", "trend"):
+    for col in ("param", "value", "unit", "age", "trend / quality"):
         params.add_column(col, no_wrap=True)
     for p in DETAIL_PARAMS:
         r, stale = b.reading(p, now)
@@ -376,10 +376,14 @@ def bed_screen(view: UnitView, scr: Screen, b: BedState, now: float, width: int,
             continue
         unit = unit_of(p)
         mark = b.mark(p)
-        value = (_marked(fmt_value(p, r.value), mark) if mark is not None else
-                 Text(fmt_value(p, r.value), style="dim strike" if stale else "bold"))
+        if mark is None:
+            value = Text(fmt_value(p, r.value), style="dim strike" if stale else "bold")
+            last = Text(b.trends.get(p, ""))
+        else:          # not ok: dim, and the reason where the trend would be
+            value = _marked(fmt_value(p, r.value), (mark[0], ""))
+            last = Text(mark[1], style="magenta dim")
         params.add_row(p, value, unit, ("stale " if stale else "") + fmt_age(r.age(now)),
-                       b.trends.get(p, "") if mark is None else "")
+                       last)
     alarms = Table(box=None, header_style="bold", pad_edge=False, expand=True)
     alarms.add_column("", width=1)
     alarms.add_column("active alarm", no_wrap=True, overflow="ellipsis")
