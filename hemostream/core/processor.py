@@ -484,9 +484,8 @@ class Processor:
                 body["withheld"] = {d[0]: d[1] for d in derived if d[0] in quality}
             marks: dict[str, dict[str, str]] = {}
             for d in derived:
-                q = quality.get(d[0])
-                if q is not None:
-                    marks[d[0]] = {"quality": q,
+                if d[0] in quality:
+                    marks[d[0]] = {"quality": quality[d[0]],
                                    "reason": why.get(d[0]) or _inputs_reason(d, why)}
             for p in cur:
                 if p in why:
