@@ -13,6 +13,7 @@ central venous line likewise spoils CVP and what uses it (SVR), not what does no
 from __future__ import annotations
 
 import json
+import re
 import subprocess
 import sys
 import textwrap
@@ -288,3 +289,40 @@ def test_quality_is_stored_only_where_it_says_something():
     assert size["marked"] - size["clean"] < 200, size
     assert np.array_equal(decode(codec.encode(block_of(rows, [], 1)))["o_time"],
                           [r[3] for r in rows])
+
+
+def test_the_demo_wards_sample_draw_on_bed_03():
+    """The case of issue 14: `hemostream demo` (its default ward and seed) draws a blood
+    sample from bed-03's arterial line early on; for that half minute neither the dashboard
+    nor the plain demo lines may show an SI or SVR as a current value."""
+    from itertools import takewhile
+
+    from hemostream.app.demo import demo_lines
+
+    lines, _source = demo_lines()
+    first = next(lines)
+    start = _t(first["rx"])
+    head = [first] + list(takewhile(lambda x: _t(x["rx"]) < start + 240, lines))
+    note = next(x for x in head if x["topic"] == "hemo/SDU2/bed-03/note"
+                and x["payload"]["kind"] == "sample_draw")
+    t_draw, dur = _t(note["payload"]["time"]), note["payload"]["duration_s"]
+    view, plain = UnitView(), Summary()
+    during = []
+
+    def on_publish(topic, body):
+        view.apply(topic, body)
+        plain.apply(topic, body)
+        if topic != "hemo/SDU2/bed-03/derived":
+            return
+        t = _t(body["time"])
+        if t_draw + 0.5 <= t < t_draw + dur:
+            during.append(t)
+            current = _current_of(view.beds["SDU2/bed-03"], t)
+            assert current("SI") is None and current("SVR") is None
+            assert not {"SI", "MSI", "SVR", "SVRI", "PP"} & set(body["values"]), body
+            line = next(x for x in plain.lines() if "SDU2/bed-03" in x)
+            assert " SI (" in line and " SVR (" in line, line
+            assert not re.search(r"\bS(I|VR) \d", line), line
+
+    _run(head, on_publish)
+    assert len(during) >= dur - 2
