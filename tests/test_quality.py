@@ -27,7 +27,7 @@ from hemostream.app.demo import Summary
 from hemostream.core.config import Config
 from hemostream.core.processor import Processor
 from hemostream.core.quality import worst
-from hemostream.dashboard import Screen, UnitView, bed_screen
+from hemostream.dashboard import Screen, UnitView, bed_screen, unit_screen
 from hemostream.dashboard.render import _current_of, value_text
 from hemostream.pipeline import make_rules
 from hemostream.replay import replay_file
@@ -128,6 +128,9 @@ def test_sample_draw_shows_no_current_si_or_svr_from_the_closed_line(tmp_path):
                 c = Console(width=110, height=60, record=True)
                 c.print(bed_screen(view, Screen(unit="TQ1", source="test"), b, t, 110, 60))
                 checked.append(c.export_text())
+                c = Console(width=110, height=30, record=True)
+                c.print(unit_screen(view, Screen(unit="TQ1", source="test"), t, 110, 30))
+                checked.append(c.export_text())
 
     _run(lines, on_publish)
     assert seen["before"] >= 50 and seen["during"] >= DRAW_FOR - 2, seen
@@ -136,6 +139,10 @@ def test_sample_draw_shows_no_current_si_or_svr_from_the_closed_line(tmp_path):
     for p in ("SI", "SVR", "ABP_SYS"):
         assert "artifact" in rows[p] and "sample draw" in rows[p], rows[p]
     assert "artifact" not in rows["HR"] and "artifact" not in rows["CI"]
+    tile = checked[1]          # the bed's tile: each value marked, the reason in its title
+    assert "bed-03 sample draw (note)" in tile, tile
+    assert re.search(r"SI [\d.]+ artifact", tile) and re.search(r"SVR \d+ artifact", tile)
+    assert re.search(r"ABP [\d/ ()]+ artifact", tile), tile
 
 
 def test_query_returns_the_quality_and_filters_on_it(tmp_path):

@@ -104,15 +104,16 @@ def sparkline(values, width: int, min_span: float = 0.0) -> str:
 
 
 def value_text(b: BedState, param: str, now: float, show_age_after: float = 10.0,
-               fmt: str | None = None) -> Text:
-    """A value with its trend arrow; dim and struck through with its age when stale."""
+               fmt: str | None = None, reason: bool = True) -> Text:
+    """A value with its trend arrow; dim and struck through with its age when stale; dim,
+    in italics and with its quality (and, with ``reason``, why) when it is not ok."""
     r, stale = b.reading(param, now)
     if r is None:
         return Text("--", style="dim")
     s = fmt.format(r.value) if fmt else fmt_value(param, r.value)
     mark = b.mark(param)
     if mark is not None:
-        return _marked(s, mark)
+        return _marked(s, mark if reason else (mark[0], ""))
     t = Text(s, style="dim strike" if stale else "bold")
     if b.status.get(param) and b.status[param] != "valid":
         t.append(f" {b.status[param]}", style="magenta")
@@ -133,7 +134,7 @@ def _marked(s: str, mark: tuple[str, str]) -> Text:
                                              "magenta dim"))
 
 
-def pressure_text(b: BedState, now: float) -> Text:
+def pressure_text(b: BedState, now: float, reason: bool = True) -> Text:
     """Arterial pressure as sys/dia (mean) with its source: line preferred over cuff."""
     for src, (s, d, m), label in (("line", ("ABP_SYS", "ABP_DIA", "ABP_MEAN"), "ABP"),
                                   ("cuff", ("NIBP_SYS", "NIBP_DIA", "NIBP_MEAN"), "NIBP")):
@@ -149,7 +150,8 @@ def pressure_text(b: BedState, now: float) -> Text:
             txt += f" ({mean:.0f})"
         mark = b.mark(s) or b.mark(d) or b.mark(m)
         if mark is not None:
-            return Text.assemble((f"{label} ", "dim"), _marked(txt, mark))
+            return Text.assemble((f"{label} ", "dim"),
+                                 _marked(txt, mark if reason else (mark[0], "")))
         t = Text.assemble((f"{label} ", "dim"), (txt, "dim strike" if stale else "bold"))
         arrow = ARROW.get(b.trends.get("MAP", ""), "")
         if arrow and not stale:
@@ -193,16 +195,20 @@ def alarm_label(a: dict) -> Text:
     return t
 
 
+TILE_PARAMS = ("HR", "SPO2", "SI", "ABP_SYS", "ABP_DIA", "ABP_MEAN", "NIBP_SYS", "NIBP_DIA",
+               "NIBP_MEAN", "CVP", "CO", "CI", "SVR")
+
+
 def tile(b: BedState, now: float, width: int, selected: bool) -> Panel:
+    def v(p: str) -> Text:     # a tile is narrow: the reasons go to its title
+        return value_text(b, p, now, reason=False)
     lines = [
-        Text.assemble(_pair("HR", value_text(b, "HR", now)), "  ",
-                      _pair("SpO2", value_text(b, "SPO2", now)), "  ",
-                      _pair("SI", value_text(b, "SI", now))),
-        pressure_text(b, now),
-        Text.assemble(_pair("CVP", value_text(b, "CVP", now)), "  ",
-                      _pair("CO", value_text(b, "CO", now)), "  ",
-                      _pair("CI", value_text(b, "CI", now))),
-        Text.assemble(_pair("SVR", value_text(b, "SVR", now)), "  ", readout_short(b)),
+        Text.assemble(_pair("HR", v("HR")), "  ", _pair("SpO2", v("SPO2")), "  ",
+                      _pair("SI", v("SI"))),
+        pressure_text(b, now, reason=False),
+        Text.assemble(_pair("CVP", v("CVP")), "  ", _pair("CO", v("CO")), "  ",
+                      _pair("CI", v("CI"))),
+        Text.assemble(_pair("SVR", v("SVR")), "  ", readout_short(b)),
     ]
     strip_w = max(10, width - 10)
     # scale floors: 20 mm[Hg] of MAP and 1 L/min of CO fill the strip (project choice)
@@ -221,6 +227,9 @@ def tile(b: BedState, now: float, width: int, selected: bool) -> Panel:
         if len(b.alarms) > 1:
             subtitle.append(f" +{len(b.alarms) - 1}", style="dim")
     title = Text(b.bed, style="reverse bold" if selected else "bold")
+    reasons = dict.fromkeys(m[1] or m[0] for m in map(b.mark, TILE_PARAMS) if m is not None)
+    if reasons:
+        title.append(" " + ", ".join(reasons), style="magenta")
     for line in lines:
         line.truncate(width - 4, overflow="ellipsis")
         line.no_wrap = True
