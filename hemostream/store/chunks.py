@@ -106,7 +106,7 @@ def merge(blocks: Sequence[dict[str, Any]]) -> dict[str, Any]:
     names = [n for b in blocks for n in b]
     for name in dict.fromkeys(names):
         if name in QUALITY_COLS:
-            out[name] = [x for b in blocks for x in _quality(b, name[0])]
+            out[name] = [x for b in blocks for x in qualities(b, name[0])]
             continue
         parts = [b[name] for b in blocks if name in b]
         if isinstance(parts[0], np.ndarray):
@@ -116,7 +116,7 @@ def merge(blocks: Sequence[dict[str, Any]]) -> dict[str, Any]:
     return out
 
 
-def _quality(b: dict[str, Any], kind: str) -> list[str]:
+def qualities(b: dict[str, Any], kind: str) -> list[str]:
     """A block's observation (``kind`` "o") or derived ("d") qualities."""
     q = b.get(f"{kind}_quality")
     if q is not None:
@@ -306,7 +306,7 @@ def iter_observations(conn: Connection, bed_ids: Iterable[int] | None = None,
         raw[b["o_conv"]] = b["o_raw"]
         cols = (b["o_time"].tolist(), b["o_mid"].tolist(), b["o_param"],
                 b["o_value"].tolist(), b["o_unit"], b["o_status"], raw.tolist(),
-                b["o_raw_unit"], b["o_late"].tolist(), _quality(b, "o"))
+                b["o_raw_unit"], b["o_late"].tolist(), qualities(b, "o"))
         out = []
         for k, (t, mid, p, v, u, s, rv, ru, late, q) in enumerate(zip(*cols)):
             if want is not None and p not in want:
@@ -334,7 +334,7 @@ def iter_derived(conn: Connection, bed_ids: Iterable[int] | None = None,
     def rows_of(c):
         b = decode(c.data)
         out = []
-        dq = _quality(b, "d")
+        dq = qualities(b, "d")
         for t, sq, p, v, u, it, q in zip(b["d_time"].tolist(), b["d_seq"].tolist(),
                                          b["d_param"], b["d_value"].tolist(), b["d_unit"],
                                          b["d_inputs_text"], dq):
