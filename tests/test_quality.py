@@ -2,12 +2,14 @@
 artifact detector, from notes, and for a derived value the worst of its inputs; on the
 dashboard, in the published derived messages, in the store and in ``hemostream query``.
 
-The clinical facts the expectations rest on (common practice, from memory; critical care
-nursing texts on arterial line care): while blood is drawn from an arterial line the stopcock
-is turned off to the patient, so the transducer sees no arterial pulse and reads a flat trace
-near zero (or the flush bag's pressure when it is flushed after); nothing computed from that
-pressure (shock index, SVR, pulse pressure) describes the patient. A flush or zeroing of a
-central venous line likewise spoils CVP and what uses it (SVR), not what does not (CI, SI).
+The clinical facts the expectations rest on: blood is drawn from an arterial line through the
+stopcock's sampling port with the arterial pressure alarms silenced, then the line is flushed
+([taylor2011], skill 16-3: published); a line closed between patient and transducer shows no
+arterial pulse ([flatwave2022]: published); the transducer then reads a flat trace near zero, or
+the flush bag's pressure while flushed (common practice). Nothing computed from that pressure
+(shock index, SVR, pulse pressure) describes the patient. A flush or zeroing of a central
+venous line likewise spoils CVP and what uses it (SVR), not what does not (CI, SI): common
+practice (the formulas, docs/rules.md).
 """
 
 from __future__ import annotations
