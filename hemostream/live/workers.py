@@ -52,6 +52,25 @@ def unit_config(cfg: Config, unit_id: str) -> Config:
                                   "instance": f"{cfg.instance}-{unit_id}"})
 
 
+def open_shared(url: str):
+    """``open_engine`` while holding a PostgreSQL advisory lock, so workers starting together
+    on an empty database do not all create its tables at once."""
+    from sqlalchemy import create_engine, text
+
+    if not url.startswith("postgresql"):
+        return open_engine(url)
+    raw = create_engine(url)
+    try:
+        with raw.connect() as conn:
+            conn.execute(text("SELECT pg_advisory_lock(72057)"))
+            try:
+                return open_engine(url)
+            finally:
+                conn.execute(text("SELECT pg_advisory_unlock(72057)"))
+    finally:
+        raw.dispose()
+
+
 class UnitService(Service):
     """The live service of one unit under a lease (see the module text)."""
 
@@ -74,6 +93,9 @@ class UnitService(Service):
         past = await asyncio.to_thread(read)
         proc = Processor(cfg, rules=self.rules, next_ids=id_base(self.token),
                          known_beds=past.beds)
+        book = getattr(self.rules, "book", None)
+        if book is not None and hasattr(book, "seed_ids"):
+            book.seed_ids(past.alarm_counts)
         tick_at = None
         for rx, topic, payload in past.messages:   # as the old owner saw them, ticks too
             if tick_at is None or rx >= tick_at + 1.0:
@@ -127,7 +149,7 @@ class Pool:
     async def run(self) -> int:
         w = self.cfg.workers
         try:
-            engine = open_engine(self.db_url)
+            engine = await asyncio.to_thread(open_shared, self.db_url)
             leases = Leases(engine, self.name, w.lease_s)
         except Exception as e:  # noqa: BLE001 - StoreError, not PostgreSQL
             log.error("%s", e)

@@ -41,6 +41,9 @@ class UnitPast:
     identities: list[tuple[str, Any]] = field(default_factory=list)
     #: arrival time of the newest stored message of the unit (None: nothing stored yet)
     newest_rx: float | None = None
+    #: (bed key "unit/bed", rule) -> the highest alarm id number raised before the first
+    #: message fed again: the rebuilt alarm book numbers on from there
+    alarm_counts: dict[tuple[str, str], int] = field(default_factory=dict)
 
 
 def _newest_rx(conn: Connection, bed_ids: list[int]) -> float | None:
@@ -86,7 +89,27 @@ def unit_past(conn: Connection, unit: str, history_s: float,
     chosen = sorted(before.values(), key=lambda r: (r["rx"], r["id"])) + window
     bodies = _bodies(conn, chosen, names)
     past.messages = [(r["rx"], r["topic"], bodies[r["id"]]) for r in chosen if r["id"] in bodies]
+    first = min((r["time"] for r in window), default=None)
+    past.alarm_counts = _alarm_counts(conn, ids, first)
     return past
+
+
+def _alarm_counts(conn: Connection, bed_ids: list[int], before: float | None
+                  ) -> dict[tuple[str, str], int]:
+    """Alarm ids look like ``<rule>@<unit>/<bed>#<n>``: the highest n of each (bed, rule)
+    among the alarms raised before ``before`` (all of them when None)."""
+    a = TABLES["alarm_events"]
+    stmt = select(a.c.alarm_id).where(a.c.bed_id.in_(bed_ids), a.c.transition == "raised")
+    if before is not None:
+        stmt = stmt.where(a.c.time < before)
+    out: dict[tuple[str, str], int] = {}
+    for (aid,) in conn.execute(stmt):
+        rule, _, rest = aid.partition("@")
+        bed, _, n = rest.rpartition("#")
+        if bed and n.isdigit():
+            key = (bed, rule)
+            out[key] = max(out.get(key, 0), int(n))
+    return out
 
 
 def _bodies(conn: Connection, rows: list[dict[str, Any]], names: dict[int, str]
