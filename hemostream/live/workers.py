@@ -142,6 +142,7 @@ class Pool:
         self._stop = asyncio.Event()
         #: (unit, event, monotonic time) of claims and releases, for tests and the log
         self.history: list[tuple[str, str, float]] = []
+        self._checks = 0
 
     def stop(self) -> None:
         self._stop.set()
@@ -202,6 +203,9 @@ class Pool:
             log.error("worker %s: the lease of unit %s was taken by another worker; stopping "
                       "it here", self.name, unit)
             await self._drop(unit)
+        self._checks += 1
+        if self._checks == 1:
+            return      # first heartbeat only: workers starting together see each other
         target = share(self.units, members, self.name)
         surplus = len(self.held) - target
         if surplus > 0:
