@@ -43,6 +43,7 @@ from ..store import StoreError, open_engine
 from ..store.cli import add_parser as add_db_parser
 from .demo import demo_lines, run_demo
 from .status import add_parser as add_status_parser
+from .workers import run_workers
 from .watch import run_watch
 
 try:
@@ -226,7 +227,6 @@ def cmd_run(args) -> int:
     setup_logging(args.log_level)
     log.info("%s", CAUTION)
     if cfg.workers.enabled:
-        from .workers import run_workers
         return run_workers(cfg, args.hl7_listen)
     offline = status_payload(cfg.instance, "offline", None, reason="connection lost")
     try:

@@ -9,9 +9,11 @@ from typing import Any
 from rich import box
 from rich.console import Console
 from rich.table import Table
+from sqlalchemy import text
 
 from ..core.redact import redact
 from ..core.wire import format_epoch
+from ..store import StoreError, open_engine
 
 out = Console(soft_wrap=True)
 err = Console(stderr=True, soft_wrap=True)
@@ -19,10 +21,6 @@ err = Console(stderr=True, soft_wrap=True)
 
 def read_status(url: str) -> dict[str, Any]:
     """Leases and live workers as plain data (times: epoch seconds of the database)."""
-    from sqlalchemy import text
-
-    from ..store import open_engine
-
     engine = open_engine(url, create=False)
     try:
         with engine.connect() as conn:
@@ -46,8 +44,6 @@ def _ago(now: float, t: float | None) -> str:
 
 
 def cmd_status(args) -> int:
-    from ..store import StoreError
-
     try:
         st = read_status(args.db)
     except StoreError as e:

@@ -32,7 +32,7 @@ import ssl
 import time
 from dataclasses import dataclass
 from pathlib import Path
-from typing import AsyncIterator, Callable
+from typing import Any, AsyncIterator, Callable
 from urllib.parse import urlsplit
 
 import aiomqtt
@@ -176,7 +176,7 @@ class MqttTransport:
         will = None
         if self.will is not None:
             will = aiomqtt.Will(self.will[0], self.will[1], qos=1, retain=True)
-        common = dict(
+        common: dict[str, Any] = dict(
             identifier=cfg.client_id, username=self.username, password=self._password,
             will=will, keepalive=cfg.keepalive_s, timeout=cfg.connect_timeout_s,
             tls_context=self._tls, max_inflight_messages=cfg.outgoing_inflight,

@@ -83,9 +83,9 @@ def unit_past(conn: Connection, unit: str, history_s: float,
     window = [r for r in rows if r["rx"] >= start]
     # the newest admission of each bed from before the window: its limits still apply
     before: dict[int, dict[str, Any]] = {}
-    for r in conn.execute(select(m).where(m.c.bed_id.in_(ids), m.c.kind == "admit",
+    for a in conn.execute(select(m).where(m.c.bed_id.in_(ids), m.c.kind == "admit",
                                           m.c.rx < start).order_by(m.c.rx, m.c.id)):
-        before[r.bed_id] = dict(r._mapping)
+        before[a.bed_id] = dict(a._mapping)
     chosen = sorted(before.values(), key=lambda r: (r["rx"], r["id"])) + window
     bodies = _bodies(conn, chosen, names)
     past.messages = [(r["rx"], r["topic"], bodies[r["id"]]) for r in chosen if r["id"] in bodies]
