@@ -6,7 +6,8 @@ worker to the first message stored by the new owner of one of its units), p50 an
     python -m benchmarks.workers --quick          # 6,000 messages, 3 kills
     python -m benchmarks.workers --out benchmarks/results-workers.json
 
-Throughput: N worker processes share 12 units of 2 beds on a fresh PostgreSQL database
+Throughput: first one plain ``hemostream run`` (no [workers], one session for every unit)
+on the same database and stream, as context; then N worker processes share 12 units of 2 beds on a fresh PostgreSQL database
 (``createdb``) and a Mosquitto of its own. Once every unit is claimed and subscribed the
 workers are paused (SIGSTOP), the whole stream is published into their persistent sessions,
 and they are resumed (SIGCONT): the figure is messages / (time from resuming to the last
@@ -148,11 +149,17 @@ def publish(url: str, lines: list[dict], speed: float | None) -> None:
 
 
 def throughput(work: Path, n_workers: int, n_messages: int) -> dict:
+    """``n_workers`` workers; 0: one plain ``hemostream run`` (no [workers]) as the context."""
     s = Setup(work, 120.0, 1.0)
     try:
-        for _ in range(n_workers):
+        if n_workers == 0:
+            s.conf.write_text(s.conf.read_text().replace("enabled = true", "enabled = false"))
             s.start_worker()
-        s.settle(n_workers)
+            time.sleep(8.0)          # started and subscribed (one session, every unit)
+        else:
+            for _ in range(n_workers):
+                s.start_worker()
+            s.settle(n_workers)
         for p in s.procs:
             p.send_signal(signal.SIGSTOP)
         lines = lines_for(n_messages, 1.0, time.time() - n_messages)
@@ -236,13 +243,15 @@ def main(argv: list[str] | None = None) -> int:
     n, kills = (6_000, 3) if a.quick else (24_000, 10)
     with tempfile.TemporaryDirectory() as d:
         work = Path(d)
+        plain = throughput(work, 0, n)
         rates = [throughput(work, w, n) for w in (1, 2, 4)]
         base = rates[0]["msg_per_s"]
         for r in rates:
             r["ratio_to_one"] = round(r["msg_per_s"] / base, 2)
+            r["ratio_to_plain"] = round(r["msg_per_s"] / plain["msg_per_s"], 2)
         ho = handover(work, kills)
     res = {"machine": machine(), "load_average": load_average(), "source": source_version(),
-           "throughput": rates, "handover": ho}
+           "plain_single_process": plain, "throughput": rates, "handover": ho}
     print(json.dumps(res, indent=1))
     if a.out:
         a.out.write_text(json.dumps(res, indent=1) + "\n")

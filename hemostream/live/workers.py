@@ -188,9 +188,11 @@ class Pool:
     async def _check(self, leases: Leases) -> None:
         for unit, h in list(self.held.items()):     # a unit service that ended by itself
             if h.task.done():
-                code = h.task.result() if not h.task.cancelled() else 1
+                exc = None if h.task.cancelled() else h.task.exception()
+                why = h.service.fatal or (f"{exc.__class__.__name__}: {exc}" if exc else
+                                          "it ended")
                 log.warning("worker %s: unit %s stopped (%s); giving its lease up",
-                            self.name, unit, h.service.fatal or f"exit {code}")
+                            self.name, unit, why)
                 self.held.pop(unit)
                 self.history.append((unit, "lost", time.monotonic()))
                 await asyncio.to_thread(leases.release, unit, h.token)
