@@ -51,7 +51,7 @@ def test_release_0_1_0_upgrades_with_every_row(old_db, capsys):
     with pytest.raises(StoreError, match="db upgrade"):
         replay_file(DATA / "handmade.jsonl", url)
     assert main(["db", "upgrade", "--db", url]) == 0
-    assert "0001 to 0003" in capsys.readouterr().err
+    assert "0001 to 0004_worker_leases" in capsys.readouterr().err
 
     engine = open_engine(url, create=False)
     got = [tuple(r.values()) for r in query.rows(engine, "observations")]
@@ -98,4 +98,4 @@ def test_migrations_ship_inside_the_package():
     assert (versions.MIGRATIONS / "env.py").is_file()
     assert versions.MIGRATIONS.parent.name == "hemostream"
     assert sorted(p.name[:4] for p in (versions.MIGRATIONS / "versions").glob("0*.py")) == [
-        "0001", "0002", "0003"]
+        "0001", "0002", "0003", "0004"]

@@ -43,6 +43,8 @@ from ..review.cli import add_parsers as add_review_parsers
 from ..store import StoreError, open_engine
 from ..store.cli import add_parser as add_db_parser
 from .demo import demo_lines, run_demo
+from .status import add_parser as add_status_parser
+from .workers import run_workers
 from .watch import run_watch
 
 try:
@@ -235,6 +237,8 @@ def cmd_run(args) -> int:
     cfg = with_overrides(live_config(args.config), args.broker, args.db)
     setup_logging(args.log_level)
     log.info("%s", CAUTION)
+    if cfg.workers.enabled:
+        return run_workers(cfg, args.hl7_listen)
     offline = status_payload(cfg.instance, "offline", None, reason="connection lost")
     try:
         transport = MqttTransport(cfg.broker, will=(status_topic(cfg), offline))
@@ -568,6 +572,7 @@ def build_parser() -> argparse.ArgumentParser:
     add_watch_parser(sub)
     add_review_parsers(sub)
     add_db_parser(sub)
+    add_status_parser(sub)
     if add_simulate_parser is not None:
         add_simulate_parser(sub, publisher=publish_lines, hl7=hl7_cli)
         add_validate_parser(sub)

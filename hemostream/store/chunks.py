@@ -242,12 +242,16 @@ def seal(conn: Connection, bed_id: int, final: bool = True) -> int:
 
 
 def sealed_messages(conn: Connection, min_mid: int | None = None,
-                    bed_ids: Iterable[int] | None = None) -> Iterator[dict[str, Any]]:
-    """Observation messages kept inside sealed chunks (as ``messages`` rows, kind obs)."""
+                    bed_ids: Iterable[int] | None = None,
+                    rx_from: float | None = None) -> Iterator[dict[str, Any]]:
+    """Observation messages kept inside sealed chunks (as ``messages`` rows, kind obs);
+    ``rx_from``: only those that arrived then or later."""
     t = TABLES["obs_chunks"]
     stmt = select(t.c.bed_id, t.c.data).where(t.c.m_count > 0)
     if min_mid is not None:
         stmt = stmt.where(t.c.mid_max >= min_mid)
+    if rx_from is not None:
+        stmt = stmt.where(t.c.rx_max >= rx_from)
     if bed_ids is not None:
         stmt = stmt.where(t.c.bed_id.in_(list(bed_ids)))
     for c in conn.execute(stmt.order_by(t.c.id)):
@@ -256,7 +260,7 @@ def sealed_messages(conn: Connection, min_mid: int | None = None,
                 b["m_id"].tolist(), b["m_rx"].tolist(), b["m_topic"], b["m_device"],
                 b["m_seq"].tolist(), b["m_time"].tolist(), b["m_late"].tolist(),
                 b["m_nobs"].tolist()):
-            if min_mid is not None and mid < min_mid:
+            if (min_mid is not None and mid < min_mid) or (rx_from is not None and rx < rx_from):
                 continue
             yield {"id": mid, "bed_id": c.bed_id, "rx": rx, "topic": topic, "kind": "obs",
                    "device": dev, "seq": seq, "time": tm, "late": late, "n_obs": n,
