@@ -1,5 +1,5 @@
 """PostgreSQL at scale, on the real server (127.0.0.1:5432, database test): obs_chunks
-partitioned by day, the 0003 -> 0004_pg_partitions upgrade keeping every row, pruning that
+partitioned by day, the 0004_worker_leases -> 0005_pg_partitions upgrade keeping every row, pruning that
 drops whole partitions, and the COPY write path giving what the SQLite path gives.
 
 CI makes sure the server runs; when it does not, these tests fail rather than skip.
@@ -88,15 +88,16 @@ def test_new_database_is_partitioned_and_days_are_made_ahead(midnight, pg_url, t
     b.dispose()
 
 
-def test_upgrade_from_0003_partitions_every_row(midnight, pg_url, tmp_path):
-    """A PostgreSQL database at revision 0003 (plain obs_chunks) is upgraded in place."""
+def test_upgrade_from_0004_partitions_every_row(midnight, pg_url, tmp_path):
+    """A PostgreSQL database at revision 0004_worker_leases (plain obs_chunks) is upgraded in
+    place."""
     rec, conf = midnight
     from hemostream.config import load_for_command
     lite = f"sqlite:///{tmp_path / 'l.db'}"
     replay_file(rec, lite, load_for_command(str(conf)))
     src = open_engine(lite, create=False)
     dst = create_engine(pg_url)
-    Base.metadata.create_all(dst)            # the 0003 tables, obs_chunks not partitioned
+    Base.metadata.create_all(dst)            # the 0004 tables, obs_chunks not partitioned
     with dst.begin() as d:                   # and without the indexes of 0005
         for ix in ("ix_obs_chunks_bed_sealed", "ix_obs_chunks_mid_max", "ix_obs_chunks_seq_max"):
             d.exec_driver_sql(f"DROP INDEX {ix}")
@@ -109,11 +110,11 @@ def test_upgrade_from_0003_partitions_every_row(midnight, pg_url, tmp_path):
         d.exec_driver_sql("SELECT setval(pg_get_serial_sequence('obs_chunks', 'id'), "
                           "(SELECT max(id) FROM obs_chunks))")
         from alembic import command
-        command.stamp(versions._config(d), "0003")
+        command.stamp(versions._config(d), "0004_worker_leases")
     dst.dispose()
     with pytest.raises(Exception, match="db upgrade"):
         open_engine(pg_url)
-    assert versions.upgrade(pg_url, Base.metadata) == ("0003", versions.head())
+    assert versions.upgrade(pg_url, Base.metadata) == ("0004_worker_leases", versions.head())
     assert sorted(_days(pg_url))[:2] == [pg.day_of(T0), pg.day_of(T0) + 1]
     a = open_engine(pg_url)
     with a.connect() as c:                   # every index on the partitioned table

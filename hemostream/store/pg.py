@@ -15,7 +15,7 @@
   its content, or a database that is away).
 
 :func:`partition` turns an ordinary ``obs_chunks`` into the partitioned one, rows kept
-(migration ``0004_pg_partitions``, and a new database at creation).
+(migration ``0005_pg_partitions``, and a new database at creation).
 """
 
 from __future__ import annotations

@@ -79,7 +79,7 @@ def create_at_head(engine: Engine, metadata: Any) -> None:
     metadata.create_all(engine)
     with engine.begin() as conn:
         if conn.dialect.name == "postgresql":
-            from .pg import partition       # what migration 0004_pg_partitions makes
+            from .pg import partition       # what migration 0005_pg_partitions makes
             partition(conn)
         command.stamp(_config(conn), "head")
 

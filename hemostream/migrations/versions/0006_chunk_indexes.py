@@ -3,14 +3,14 @@ segments ``(bed_id, sealed)``, the newest message id ``mid_max`` and derived-val
 ``seq_max``. Without them each lookup reads every chunk row, which on a database of months
 (a page or more per chunk) costs more than the writing. Both SQLite and PostgreSQL.
 
-Revision ID: 0005_chunk_indexes
-Revises: 0004_pg_partitions
+Revision ID: 0006_chunk_indexes
+Revises: 0005_pg_partitions
 """
 
 from alembic import op
 
-revision = "0005_chunk_indexes"
-down_revision = "0004_pg_partitions"
+revision = "0006_chunk_indexes"
+down_revision = "0005_pg_partitions"
 branch_labels = None
 depends_on = None
 

@@ -4,14 +4,14 @@ The table becomes ``PARTITION BY RANGE (t_min)`` with one partition per UTC day,
 and the id sequence kept (:func:`hemostream.store.pg.partition`); pruning then drops whole
 partitions. SQLite is left as it is (the revision is only recorded). One way only.
 
-Revision ID: 0004_pg_partitions
-Revises: 0003
+Revision ID: 0005_pg_partitions
+Revises: 0004_worker_leases
 """
 
 from alembic import op
 
-revision = "0004_pg_partitions"
-down_revision = "0003"
+revision = "0005_pg_partitions"
+down_revision = "0004_worker_leases"
 branch_labels = None
 depends_on = None
 
