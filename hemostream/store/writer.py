@@ -78,7 +78,7 @@ def write_rows(engine: Engine, rows: dict[str, list[Any]],
     values are already plain floats, ints, strings, booleans and bytes).
     """
     if engine.dialect.name == "postgresql":
-        return _write_rows_copy(engine, rows)
+        return _write_rows_copy(engine, rows, guard)
     positional = engine.dialect.positional
     with engine.begin() as conn:
         if guard is not None:       # e.g. a lease check (raises Fenced): same transaction
@@ -113,11 +113,14 @@ def write_rows(engine: Engine, rows: dict[str, list[Any]],
             conn.exec_driver_sql(sql, params)
 
 
-def _write_rows_copy(engine: Engine, rows: dict[str, list[Any]]) -> None:
+def _write_rows_copy(engine: Engine, rows: dict[str, list[Any]],
+                     guard: Callable[[Any], None] | None = None) -> None:
     """PostgreSQL: each table's batch as one ``COPY ... FROM STDIN`` (:mod:`.pg`)."""
     from .pg import copy_rows
 
     with engine.begin() as conn:
+        if guard is not None:       # e.g. a lease check (raises Fenced): same transaction
+            guard(conn)
         for name in INSERT_ORDER:
             if name in CHUNKED:
                 if name == "observations" and (rows.get("observations") or rows.get("derived")):
