@@ -32,7 +32,7 @@ from ..core.redact import RedactingFilter
 from ..core.wire import ID_RE, command_body, encode, topic
 from ..live.health import status_payload
 from ..live.mqtt import BrokerSettingsError, MqttTransport, parse_broker_url
-from ..live.publish import PublishError, publish_recording_lines
+from ..live.publish import PublishError, publish_until_stopped
 from ..live.service import Service, status_topic
 from ..live.transport import TransportError
 from ..intake.hl7 import cli as hl7_cli
@@ -230,8 +230,9 @@ def cmd_run(args) -> int:
     except BrokerSettingsError as e:
         log.error("%s", e)
         return 2
-    log.info("broker %s as client %r (QoS 1, persistent session, acknowledged after "
-             "storing)", transport.address, cfg.broker.client_id)
+    log.info("connecting to the broker at %s as client %r (QoS 1, persistent session, "
+             "acknowledged after storing); Ctrl-C or SIGTERM stops the service",
+             transport.address, cfg.broker.client_id)
     svc = Service(cfg, transport)
     listen = args.hl7_listen or cfg.intake.hl7.listen
     if listen:
@@ -395,15 +396,16 @@ def publish_lines(lines, url: str, speed: float | None, give_up_s: float = 120.0
         err.print(f"[red]error:[/] --publish: {e}", highlight=False)
         return 2
     try:
-        s = asyncio.run(publish_recording_lines(lines, url, speed,
-                                                max_seconds_down=give_up_s))
+        s = publish_until_stopped(lines, url, speed, give_up_s=give_up_s,
+                                  say=lambda text: err.print(text, highlight=False))
     except PublishError as e:
         err.print(f"[red]error:[/] {e}; gave up: {e.summary.words()}", highlight=False)
         return 1
     except TransportError as e:
         err.print(f"[red]error:[/] {e}", highlight=False)
         return 1
-    except KeyboardInterrupt:
+    if s.stopped:
+        err.print(f"stopped publishing to {url}: {s.words()}", highlight=False)
         return 130
     err.print(f"published to {url}: {s.words()}", highlight=False)
     return 0
