@@ -215,3 +215,61 @@ def test_watch_once_on_an_unknown_unit_names_the_units_seen(broker):  # noqa: F8
            "broker: SDU4)" in r.stderr
     assert "seen on the broker: SDU4" in r.stdout
     assert time.monotonic() - t0 < 40
+
+
+# --------------------------------------------------------------- b. a second replay's rejects
+
+EXAMPLE = ROOT / "simulators" / "recordings" / "example-ward.jsonl"
+
+
+def _rejects(url: str) -> list[tuple]:
+    from sqlalchemy import select
+
+    from hemostream.store import TABLES, open_engine
+    engine = open_engine(url, create=False)
+    try:
+        rj = TABLES["rejected"]
+        with engine.connect() as c:
+            return sorted((r.topic, r.category, r.reason) for r in c.execute(
+                select(rj.c.topic, rj.c.category, rj.c.reason)))
+    finally:
+        engine.dispose()
+
+
+def test_a_second_replay_stores_no_reject_twice(tmp_path):
+    url = f"sqlite:///{tmp_path}/w.db"
+    hemostream("replay", str(EXAMPLE), "--db", url, check_rc=0)
+    first = _rejects(url)
+    assert {c for _, c, _ in first} >= {"invalid_json", "bad_topic", "bad_version"}
+    r = hemostream("replay", str(EXAMPLE), "--db", url, check_rc=0)
+    assert _rejects(url) == first
+    assert re.search(r"\b\d+ of the rejects were already in the database", r.stdout), r.stdout
+    # a different file with one of those lines at another place is new input: stored
+    other = tmp_path / "other.jsonl"
+    other.write_bytes(b"\n" + b"not json at all\n")
+    hemostream("replay", str(other), "--db", url, check_rc=0)
+    assert len(_rejects(url)) == len(first) + 1
+
+
+@pytest.mark.postgres
+def test_a_second_replay_into_postgresql_stores_no_reject_twice():
+    import uuid
+
+    from sqlalchemy import create_engine, text
+
+    from hemostream.replay import replay_file
+    pg = os.environ.get("HEMOSTREAM_TEST_PG", "postgresql+psycopg://127.0.0.1:5432/test")
+    schema = f"hs_test_{uuid.uuid4().hex[:8]}"
+    admin = create_engine(pg)
+    with admin.begin() as c:
+        c.execute(text(f"CREATE SCHEMA {schema}"))
+    url = f"{pg}?options=-csearch_path%3D{schema}"
+    try:
+        replay_file(EXAMPLE, url)
+        first = _rejects(url)
+        again = replay_file(EXAMPLE, url)
+        assert _rejects(url) == first and again.rejects_known > 0
+    finally:
+        with admin.begin() as c:
+            c.execute(text(f"DROP SCHEMA {schema} CASCADE"))
+        admin.dispose()

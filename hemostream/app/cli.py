@@ -157,6 +157,9 @@ def cmd_replay(args) -> int:
     if summary.duplicates:
         out.print(f"  {summary.duplicates} message(s) were already in the database (or came "
                   "twice) and were not stored again")
+    if summary.rejects_known:
+        out.print(f"  {summary.rejects_known} of the rejects were already in the database "
+                  "(from an earlier replay) and were not stored again")
     out.print(f"  see them with: hemostream query rejected --db {summary.db_url}"
               if summary.rejected_total else
               f"  see them with: hemostream query derived --db {summary.db_url}")
