@@ -273,3 +273,24 @@ def test_a_second_replay_into_postgresql_stores_no_reject_twice():
         with admin.begin() as c:
             c.execute(text(f"DROP SCHEMA {schema} CASCADE"))
         admin.dispose()
+
+
+# --------------------------------------------------------------- d. compare's late onsets
+
+def test_compare_counts_onsets_near_the_end_apart_from_missed_ones():
+    """tests/data/compare-hr.jsonl runs 900 s; bed-2's onset at 290 s rises to 112 /min,
+    under the 120 limit (tests/test_compare.py counts it). With a 60-minute window there
+    is too little recording after it to call it missed; with 10 minutes there is enough."""
+    data = ROOT / "tests" / "data"
+    args = ["compare", str(data / "compare-hr.jsonl"), "--config",
+            str(data / "compare-hr-high-120.toml"), "--quiet"]
+    r = hemostream(*args, check_rc=0)
+    rows = {re.sub(r"\s+", " ", x.split("│")[0]).strip(): x.split("│")[-1].strip()
+            for x in r.stdout.splitlines() if "│" in x}
+    assert rows["missed"] == "0"
+    assert rows["too late in the recording to judge (< 60 min left)"] == "1"
+    assert "too late to judge (no alarm, 10 min" in r.stdout       # (the cell wraps)
+    r = hemostream(*args, "--detect-within", "10", check_rc=0)
+    rows = {re.sub(r"\s+", " ", x.split("│")[0]).strip(): x.split("│")[-1].strip()
+            for x in r.stdout.splitlines() if "│" in x}
+    assert rows["missed"] == "1" and not any("too late" in k for k in rows)
