@@ -294,3 +294,66 @@ def test_compare_counts_onsets_near_the_end_apart_from_missed_ones():
     rows = {re.sub(r"\s+", " ", x.split("│")[0]).strip(): x.split("│")[-1].strip()
             for x in r.stdout.splitlines() if "│" in x}
     assert rows["missed"] == "1" and not any("too late" in k for k in rows)
+
+
+# --------------------------------------------------------------- e. the report's fluid results
+
+@pytest.fixture(scope="module")
+def bleeding_bed(tmp_path_factory):
+    """The shipped hemorrhage scenario: a bed bleeds 2 L, then gets 1 L of crystalloid (its
+    SV has fallen to about a third of normal) and, 20 min later, blood; replayed."""
+    d = tmp_path_factory.mktemp("bleeding")
+    hemostream("simulate", "--scenario", "hemorrhage", "--out", str(d / "h.jsonl"), "--quiet",
+               check_rc=0, timeout=300)
+    hemostream("replay", str(d / "h.jsonl"), "--db", f"sqlite:///{d}/h.db", check_rc=0,
+               timeout=300)
+    return d
+
+
+def test_report_qualifies_an_implausible_fluid_response(bleeding_bed):
+    out = bleeding_bed / "r.html"
+    hemostream("report", "--db", f"sqlite:///{bleeding_bed}/h.db", "--bed", "SDU2/bed-01",
+               "--out", str(out), check_rc=0, timeout=300)
+    html = out.read_text()
+    rows = re.findall(r"<tr>(.*?)</tr>", html[html.index('id="fluid"'):], re.S)
+    first = next(r for r in rows if "1000 mL" in r)
+    # the figures of the result itself, against a handbook range (resting adult SV about
+    # 60-100 mL, from memory) and the rule's own threshold (10 %)
+    base = float(re.search(r"<td[^>]*>(\d+(?:\.\d+)?)</td>", first.split("SV", 1)[1]).group(1))
+    assert base < 40
+    assert "responsive (qualified)" in first
+    assert f"baseline SV {base:g} mL was very low" in first
+    assert "the change may owe to the bed&#x27;s course" in first
+    assert "low cardiac output" in first
+
+
+def test_report_fluid_labels_stay_clear_of_the_legend(bleeding_bed, monkeypatch):
+    """The labels of fluid results near the end of the recording stay inside the plot, clear
+    of the legend beside it (measured with matplotlib's own text extents)."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    from hemostream.app.cli import main
+    from hemostream.review import plots
+    seen = []
+    orig = plots.finish
+
+    def measure(fig, key, *a, **k):
+        FigureCanvasAgg(fig)
+        fig.canvas.draw()
+        r = fig.canvas.get_renderer()
+        for ax in fig.axes:
+            leg = ax.get_legend()
+            frame = ax.get_window_extent(r)
+            for t in ax.texts:
+                if "fluid" in t.get_text() or "responsive" in t.get_text():
+                    box = t.get_window_extent(r)
+                    seen.append((key, t.get_text()))
+                    assert box.x1 <= frame.x1 + 1 and box.x0 >= frame.x0 - 1, (key, t)
+                    if leg is not None:
+                        assert not box.overlaps(leg.get_window_extent(r)), (key, t)
+        return orig(fig, key, *a, **k)
+    monkeypatch.setattr(plots, "finish", measure)
+    assert main(["report", "--db", f"sqlite:///{bleeding_bed}/h.db", "--bed", "SDU2/bed-01",
+                 "--out", str(bleeding_bed / "l.html")]) == 0
+    keys = {k for k, _ in seen}
+    assert "alarms" in keys and len(seen) >= 4, seen
