@@ -222,8 +222,8 @@ def replay_file(path: str | Path, db_url: str | None = None, config: Config | No
         engine.dispose()
     if progress is not None:
         progress(total, total)
-    for f in fields(Counters):
-        setattr(summary, f.name, getattr(proc.counters, f.name))
+    for c in fields(Counters):
+        setattr(summary, c.name, getattr(proc.counters, c.name))
     summary.rejected = dict(sorted(summary.rejected.items()))
     summary.rejects_known = fresh.dropped
     summary.seconds = _time.perf_counter() - t0

@@ -250,6 +250,7 @@ class Circulation:
     def _advance(self) -> None:
         h = self.dt
         q, v0 = self._q, self._v0
+        assert self._jac is not None          # advance() checked it
         a, b = self._jac
         self._jac = None
         # f_i = q_(i-1) - q_i, plus the external flows into the systemic veins

@@ -446,10 +446,10 @@ def _check_event(ev: Any, where: str) -> None:
         raise ScenarioError(f"{where}: note at {format_duration(ev.at)}: kind {ev.kind!r}; "
                             f"expected one of {', '.join(NOTE_KINDS)}")
     if ev.do == "dropout":
-        bad = [p for p in ev.params if p not in PARAMS]
-        if bad:
+        unknown = [p for p in ev.params if p not in PARAMS]
+        if unknown:
             raise ScenarioError(f"{where}: dropout at {format_duration(ev.at)}: unknown "
-                                f"param(s) {', '.join(bad)}")
+                                f"param(s) {', '.join(unknown)}")
 
 
 def _check_monitoring(mon: Monitoring, where: str) -> None:

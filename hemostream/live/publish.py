@@ -23,8 +23,9 @@ from typing import Any, Callable, Iterable, Iterator
 
 from ..config import load_config
 from ..core.config import BrokerConfig
-from ..core.wire import format_epoch, parse_time, parse_time_or_none
+from ..core.wire import parse_time_or_none
 from .mqtt import MqttTransport
+from .retime import Retimer, close_gaps, map_times  # noqa: F401  (their old home)
 from .service import backoff
 from .transport import TransportError
 
@@ -40,83 +41,6 @@ def as_record(line: Any) -> dict | None:
     except (ValueError, TypeError):
         return None
     return rec if isinstance(rec, dict) else None
-
-
-class Retimer:
-    """Moves a recording's times to the present.
-
-    Real time (``speed`` 1) shifts every time by one offset, so the first arrival becomes
-    ``start``. Faster than real time compresses the time line by ``speed`` around the first
-    arrival, so measurement times keep pace with a receiver that uses its wall clock.
-
-    >>> r = Retimer(start=1000.0, speed=2.0)
-    >>> r.time(50.0), r.time(60.0)
-    (1000.0, 1005.0)
-    """
-
-    def __init__(self, start: float, speed: float = 1.0) -> None:
-        self.start = start
-        self.speed = speed
-        self.t0: float | None = None
-
-    def time(self, t: float) -> float:
-        if self.t0 is None:
-            self.t0 = t
-        return self.start + (t - self.t0) / self.speed
-
-    def record(self, rec: dict) -> dict:
-        """A retimed copy of a recording line (see :func:`map_times`)."""
-        return map_times(rec, self.time)
-
-
-def map_times(rec: dict, fn: Callable[[float], float]) -> dict:
-    """A copy of a recording line with ``rx``, the payload's ``time`` and each observation's
-    own ``time`` passed through ``fn`` (epoch seconds). Broken payloads pass unchanged."""
-
-    def text(v: Any) -> Any:
-        if not isinstance(v, str):
-            return v
-        try:
-            return format_epoch(fn(parse_time(v)))
-        except ValueError:
-            return v
-
-    out = dict(rec)
-    if isinstance(rec.get("rx"), str):
-        out["rx"] = text(rec["rx"])
-    p = rec.get("payload")
-    if isinstance(p, dict):
-        p = dict(p)
-        if "time" in p:
-            p["time"] = text(p["time"])
-        if isinstance(p.get("obs"), list):
-            p["obs"] = [dict(o, time=text(o["time"])) if isinstance(o, dict) and "time" in o
-                        else o for o in p["obs"]]
-        out["payload"] = p
-    return out
-
-
-def close_gaps(recs: Iterable[dict], max_gap_s: float = 5.0,
-               keep_s: float = 1.0) -> Iterator[dict]:
-    """Shorten every silence longer than ``max_gap_s`` between arrivals to ``keep_s``, moving
-    all later times (arrival and measurement) back by the same amount, so a demo does not sit
-    idle through a recording's quiet stretches.
-
-    >>> recs = [{"rx": "2026-12-01T08:00:00Z"}, {"rx": "2026-12-01T08:05:00Z"}]
-    >>> [r["rx"] for r in close_gaps(recs)]
-    ['2026-12-01T08:00:00Z', '2026-12-01T08:00:01.000Z']
-    """
-    prev = None
-    shift = 0.0
-    for rec in recs:
-        rx = rec.get("rx")
-        if isinstance(rx, str):
-            t = parse_time_or_none(rx)
-            if t is not None:
-                if prev is not None and t - prev > max_gap_s:
-                    shift += t - prev - keep_s
-                prev = t
-        yield map_times(rec, lambda x, s=shift: x - s) if shift else rec
 
 
 def payload_bytes(payload: Any) -> bytes:
@@ -201,7 +125,7 @@ async def publish_recording_lines(lines_iter: Iterable[Any], url: str, speed: fl
 
     recs: Iterable[dict] = readable(lines_iter)
     if retime and paced:
-        rt = Retimer(clock(), speed)
+        rt = Retimer(clock(), speed or 1.0)
         recs = (rt.record(r) for r in recs)
     elif retime:                    # as fast as possible: the recording ends now
         recs = list(recs)
@@ -300,7 +224,8 @@ async def publish_recording_lines(lines_iter: Iterable[Any], url: str, speed: fl
             if rx is not None:      # a line without a valid arrival time goes out unpaced
                 if rx0 is None:
                     rx0 = rx
-                delay = (rx - rx0) / (1.0 if retime else speed) - (time.monotonic() - wall0)
+                pace = 1.0 if retime else speed or 1.0
+                delay = (rx - rx0) / pace - (time.monotonic() - wall0)
                 if delay > 0:
                     await sleep(delay)
             await wait_window(window - 1)
@@ -335,13 +260,13 @@ def publish_until_stopped(lines: Iterable[Any], url: str, speed: float | None, *
 
     Raises :class:`PublishError` when it gave up.
     """
-    last = {"text": "", "t": 0.0}
+    said: list[tuple[str, float]] = [("", 0.0)]       # the last words and when
 
     def waiting(text: str) -> None:
         now = time.monotonic()
-        if text != last["text"] or now - last["t"] >= 10.0:
+        if text != said[0][0] or now - said[0][1] >= 10.0:
             say(text + "; Ctrl-C stops")
-            last.update(text=text, t=now)
+            said[0] = (text, now)
 
     async def main() -> PublishSummary:
         loop = asyncio.get_running_loop()
