@@ -1,5 +1,8 @@
 """A closed-loop, beat-averaged model of the circulation.
 
+Size: one model: its state, controls, implicit step and read-out follow one derivation, read
+together (the equations would scatter if split).
+
 Five compartments in a ring, each a compliance with an unstressed volume::
 
     systemic arteries (SA) -> systemic veins (SV) -> right atrium (RA)

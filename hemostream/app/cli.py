@@ -1,5 +1,8 @@
 """The ``hemostream`` command: every subcommand is registered here, the composition root.
 
+Size: every subcommand's parser and small handler sit in this one composition root for now;
+to be split by command group (issue 16).
+
 ``replay``, ``query`` and ``check-config`` (storage and the core), ``run`` and ``ack`` (the
 live service over a broker), ``demo`` (:mod:`.demo`), ``watch`` (:mod:`.watch`), ``compare``
 and ``report`` (implemented in :mod:`hemostream.review`), ``db`` (:mod:`hemostream.store.cli`)

@@ -1,6 +1,9 @@
 """Figures of one bed over a time window (matplotlib, Agg): the alarm time line and one value
 panel per group of parameters, all on the same time axis.
 
+Size: the alarm time line and the value panels share the axes, shading and note drawing;
+being extended now (signal-quality shading), split after that lands.
+
 Every figure has the same width and the same left and right margins, so their time axes line
 up when stacked on a page. Artists a reader may want to hover (alarm spans, notes,
 fluid-challenge results) get an SVG id (``gid``) and a hover text; :func:`.svg.svg_of` turns the
