@@ -12,6 +12,8 @@ import sys
 import time
 from typing import Any, Callable, Iterator
 
+from hemostream.core.argtypes import number_above, whole_number
+
 from .scenario import format_duration
 
 __all__ = ["add_parser", "run", "main"]
@@ -222,24 +224,8 @@ def _duration(text: str) -> float:
     return value
 
 
-def _positive_int(text: str) -> int:
-    try:
-        n = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
-    if n < 1 or n > 10000:
-        raise argparse.ArgumentTypeError(f"expected 1 to 10000, got {n}")
-    return n
-
-
-def _positive_float(text: str) -> float:
-    try:
-        x = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
-    if not x > 0:
-        raise argparse.ArgumentTypeError(f"expected a number above 0, got {text!r}")
-    return x
+_positive_int = whole_number(1, 10000)
+_positive_float = number_above(0)
 
 
 def _start(text: str):

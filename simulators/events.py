@@ -54,7 +54,8 @@ def format_duration(seconds: float) -> str:
 
 
 Duration = Annotated[float, BeforeValidator(parse_duration)]
-_STRICT = ConfigDict(extra="forbid", frozen=True)
+#: every scenario model: unknown keys are errors, values do not change once loaded
+STRICT = ConfigDict(extra="forbid", frozen=True)
 
 # --------------------------------------------------------------------------- events
 
@@ -72,7 +73,7 @@ CHANNELS = ("ABP", "CVP", "PAP")
 
 
 class _Event(BaseModel):
-    model_config = _STRICT
+    model_config = STRICT
     at: Duration
     text: Annotated[str, Field(max_length=500)] | None = None
 

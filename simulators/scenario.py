@@ -36,7 +36,7 @@ from pydantic import BaseModel, Field, ValidationError
 from hemostream.core.wire import ID_RE, NOTE_KINDS, PARAMS
 from hemostream.core.units import UNITS, CANONICAL
 
-from .events import (_STRICT, CONTROL_NAMES, CONTROL_NEUTRAL, Duration, Event, format_duration,
+from .events import (CONTROL_NAMES, CONTROL_NEUTRAL, STRICT, Duration, Event, format_duration,
                      parse_duration)
 from .patient import PATIENT_FIELDS
 
@@ -54,7 +54,7 @@ class ScenarioError(ValueError):
 
 class Monitoring(BaseModel):
     """What is attached to the patient and how the bed's gateway reports it."""
-    model_config = _STRICT
+    model_config = STRICT
     arterial_line: bool = True
     central_line: bool = True
     pa_catheter: bool = False
@@ -72,7 +72,7 @@ class Monitoring(BaseModel):
 class Artifacts(BaseModel):
     """Rates of the random artifacts drawn from the seed (per hour), and whether staff
     document them (probability of a note)."""
-    model_config = _STRICT
+    model_config = STRICT
     random: bool = True
     flush_per_hour: float = 0.25
     zeroing_per_hour: float = 0.05
@@ -87,13 +87,13 @@ class Artifacts(BaseModel):
 
 
 class Limit(BaseModel):
-    model_config = _STRICT
+    model_config = STRICT
     low: float | None = None
     high: float | None = None
 
 
 class BedTemplate(BaseModel):
-    model_config = _STRICT
+    model_config = STRICT
     id: str | None = None
     scenario: str | None = None               # borrow this scenario's first bed
     label: str | None = None
@@ -105,7 +105,7 @@ class BedTemplate(BaseModel):
 
 
 class ScenarioFile(BaseModel):
-    model_config = _STRICT
+    model_config = STRICT
     id: Annotated[str, Field(pattern=r"^[a-z0-9_]{1,40}$")]
     title: str
     description: Annotated[str, Field(max_length=200)]

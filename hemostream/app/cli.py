@@ -28,6 +28,7 @@ from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
 from rich.table import Table
 
 from .. import CAUTION, query
+from ..core.argtypes import number_above, whole_number
 from ..config import (check_config_file, load_for_command,
                       with_overrides)
 from ..core.config import Config
@@ -78,26 +79,9 @@ def setup_logging(level: str) -> None:
 
 # --------------------------------------------------------------------------- argument types
 
-def positive_float(text: str) -> float:
-    """An argparse type: a number above 0 (argparse names the option in its message)."""
-    try:
-        v = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a number above 0, got {text!r}") from None
-    if not v > 0 or v == float("inf"):
-        raise argparse.ArgumentTypeError(f"expected a number above 0, got {text!r}")
-    return v
-
-
-def non_negative_int(text: str) -> int:
-    try:
-        v = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a whole number 0 or more, got {text!r}"
-                                         ) from None
-    if v < 0:
-        raise argparse.ArgumentTypeError(f"expected a whole number 0 or more, got {text!r}")
-    return v
+#: a number above 0; a whole number 0 or more (the shared wording, :mod:`..core.argtypes`)
+positive_float = number_above(0)
+non_negative_int = whole_number(0)
 
 
 def duration(text: str) -> float:
@@ -570,15 +554,7 @@ def build_parser() -> argparse.ArgumentParser:
 
 # --------------------------------------------------------------------------- validate
 
-def _cohort_size(text: str) -> int:
-    try:
-        n = int(text)
-    except ValueError:
-        n = 0
-    if n < 1:
-        raise argparse.ArgumentTypeError(f"expected a whole number of patients above 0, "
-                                         f"got {text!r}")
-    return n
+_cohort_size = whole_number(1, what="a whole number of patients")
 
 
 def add_validate_parser(sub) -> None:
