@@ -21,8 +21,9 @@ KINDS = ("observations", "derived", "rejected", "notes", "alarms", "admissions",
 
 # columns shown per kind, in order (after time, care_unit, bed)
 _COLUMNS: dict[str, tuple[str, ...]] = {
-    "observations": ("param", "value", "unit", "status", "raw_value", "raw_unit", "late"),
-    "derived": ("param", "value", "unit", "inputs"),
+    "observations": ("param", "value", "unit", "status", "raw_value", "raw_unit", "late",
+                     "quality"),
+    "derived": ("param", "value", "unit", "inputs", "quality"),
     "notes": ("kind", "param", "volume_ml", "over_min", "duration_s", "by", "text"),
     "alarms": ("alarm_id", "rule", "priority", "category", "transition", "value", "by",
                "details"),
@@ -37,13 +38,18 @@ def parse_since(text: str) -> float:
 
 
 def rows(engine, kind: str, bed: str | None = None, param: str | None = None,
-         since: float | None = None, limit: int | None = None) -> Iterator[dict[str, Any]]:
-    """Rows of ``kind`` as dicts with RFC 3339 times, oldest first."""
+         since: float | None = None, limit: int | None = None,
+         quality: list[str] | None = None) -> Iterator[dict[str, Any]]:
+    """Rows of ``kind`` as dicts with RFC 3339 times, oldest first. ``quality``: only
+    observations or derived values of these qualities (core/quality.py)."""
+    if quality is not None and kind not in ("observations", "derived"):
+        raise ValueError(f"--quality applies to observations and derived values, "
+                         f"not to {kind}")
     if kind == "configs":          # configurations in force (store.config_snapshots)
         yield from ({**c, "time": iso(c["time"])} for c in config_snapshots(engine, since, limit))
         return
     if kind in ("observations", "derived"):
-        yield from _chunked_rows(engine, kind, bed, param, since, limit)
+        yield from _chunked_rows(engine, kind, bed, param, since, limit, quality)
         return
     table = TABLES["alarm_events" if kind == "alarms" else kind]
     beds = TABLES["beds"]
@@ -108,7 +114,8 @@ def _bed_ids(conn, bed: str | None) -> dict[int, tuple[str, str]]:
 
 
 def _chunked_rows(engine, kind: str, bed: str | None, param: str | None,
-                  since: float | None, limit: int | None) -> Iterator[dict[str, Any]]:
+                  since: float | None, limit: int | None,
+                  quality: list[str] | None = None) -> Iterator[dict[str, Any]]:
     """Observations or derived values (stored in chunks), as :func:`rows` gives them."""
     with engine.connect() as conn:
         names = _bed_ids(conn, bed)
@@ -118,22 +125,23 @@ def _chunked_rows(engine, kind: str, bed: str | None, param: str | None,
         params = [param] if param else None
         n = 0
         if kind == "observations":
-            for t, _mid, b, p, v, u, st, rv, ru, late in iter_observations(
-                    conn, ids, params, since):
+            for t, _mid, b, p, v, u, st, rv, ru, late, q in iter_observations(
+                    conn, ids, params, since, quality=quality):
                 unit, bed_name = names[b]
                 yield {"time": iso(t), "care_unit": unit, "bed": bed_name, "param": p,
                        "value": v, "unit": u, "status": st, "raw_value": rv, "raw_unit": ru,
-                       "late": late}
+                       "late": late, "quality": q}
                 n += 1
                 if limit and n >= limit:
                     return
         else:
-            for t, _seq, b, p, v, u, inputs in iter_derived(conn, ids, params, since):
+            for t, _seq, b, p, v, u, inputs, q in iter_derived(conn, ids, params, since,
+                                                                 quality=quality):
                 unit, bed_name = names[b]
-                pairs = [[q, iso(x) if isinstance(x, float | int) else x]
-                         for q, x in json.loads(inputs)]
+                pairs = [[ip, iso(x) if isinstance(x, float | int) else x]
+                         for ip, x in json.loads(inputs)]
                 yield {"time": iso(t), "care_unit": unit, "bed": bed_name, "param": p,
-                       "value": v, "unit": u, "inputs": pairs}
+                       "value": v, "unit": u, "inputs": pairs, "quality": q}
                 n += 1
                 if limit and n >= limit:
                     return
@@ -141,8 +149,8 @@ def _chunked_rows(engine, kind: str, bed: str | None, param: str | None,
 
 #: the narrower set of columns the table format shows (jsonl and csv carry everything)
 TABLE_COLUMNS: dict[str, tuple[str, ...]] = {
-    "observations": ("time", "bed", "param", "value", "unit", "status", "late"),
-    "derived": ("time", "bed", "param", "value", "unit"),
+    "observations": ("time", "bed", "param", "value", "unit", "status", "late", "quality"),
+    "derived": ("time", "bed", "param", "value", "unit", "quality"),
     "notes": ("time", "bed", "kind", "param", "volume_ml", "by"),
     "alarms": ("time", "bed", "rule", "priority", "transition", "by"),
     "admissions": ("time", "bed", "height_cm", "weight_kg", "bsa_m2", "discharged"),

@@ -51,17 +51,20 @@ def test_release_0_1_0_upgrades_with_every_row(old_db, capsys):
     with pytest.raises(StoreError, match="db upgrade"):
         replay_file(DATA / "handmade.jsonl", url)
     assert main(["db", "upgrade", "--db", url]) == 0
-    assert "0001 to 0003" in capsys.readouterr().err
+    assert "0001 to 0004_worker_leases" in capsys.readouterr().err
 
     engine = open_engine(url, create=False)
     got = [tuple(r.values()) for r in query.rows(engine, "observations")]
-    want = [(iso(t), u, b, p, v, un, st, rv, ru, bool(late))
+    # an old row's quality is its status as received (the wire format's status names;
+    # "valid" is "ok"): the release stored no artifact marks
+    want = [(iso(t), u, b, p, v, un, st, rv, ru, bool(late), "ok" if st == "valid" else st)
             for t, u, b, p, v, un, st, rv, ru, late in obs]
     assert got == want                                 # every row, value-exact, same order
-    gotd = [(r["time"], r["bed"], r["param"], r["value"], r["unit"], r["inputs"])
-            for r in query.rows(engine, "derived")]
+    assert sum(1 for r in got if r[-1] != "ok") == 1   # the one questionable value
+    gotd = [(r["time"], r["bed"], r["param"], r["value"], r["unit"], r["inputs"],
+             r["quality"]) for r in query.rows(engine, "derived")]
     import json
-    wantd = [(iso(t), b, p, v, u, [[q, iso(x)] for q, x in json.loads(i)])
+    wantd = [(iso(t), b, p, v, u, [[q, iso(x)] for q, x in json.loads(i)], "ok")
              for t, b, p, v, u, i in der]
     assert gotd == wantd
     stored = [tuple(m[c] for c in ("id", "bed_id", "rx", "topic", "kind", "device", "seq",
@@ -95,4 +98,4 @@ def test_migrations_ship_inside_the_package():
     assert (versions.MIGRATIONS / "env.py").is_file()
     assert versions.MIGRATIONS.parent.name == "hemostream"
     assert sorted(p.name[:4] for p in (versions.MIGRATIONS / "versions").glob("0*.py")) == [
-        "0001", "0002", "0003"]
+        "0001", "0002", "0003", "0004"]

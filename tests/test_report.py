@@ -294,3 +294,41 @@ def test_limits_come_from_the_configuration_stored_with_the_data(built, tmp_path
     page2 = out2.read_text(encoding="utf-8")
     assert "no stored configuration" in page2
     assert "ABP_MEAN low" not in page2
+
+
+def test_periods_of_values_that_are_not_ok_are_shaded(page):
+    """The line flush note at 450 s (6 s, ABP) and the CVP zeroing at 520 s (12 s, status
+    calibrating for 10 values): their panels shade those stretches and say why; the heart
+    rate, which neither touches, has none (core/quality.py; docs/rules.md)."""
+    _, root = page
+    lines = _lines()
+    start = _t(next(x for x in lines if x["topic"].endswith("/obs"))["payload"]["time"])
+    notes = {x["payload"]["kind"]: _t(x["payload"]["time"]) for x in lines
+             if x["topic"].endswith("/note")}
+    figures = {f.get("id"): f for f in root.iter(f"{XHTML}figure")}
+
+    def spans(key):
+        return [g.find(f"{SVG}title").text for g in figures[f"panel-{key}"].iter(f"{SVG}g")
+                if g.get("class") == "quality-span"]
+
+    def covers(titles, t, words):
+        hhmmss = datetime.fromtimestamp(t, timezone.utc).strftime("%H:%M:%S")
+        for text in titles:
+            a, b = re.findall(r"\d\d:\d\d:\d\d", text)[:2]
+            if a <= hhmmss <= b and all(w in text for w in words):
+                return True
+        return False
+
+    assert notes["line_flush"] - start == 450 and notes["zeroing"] - start == 520
+    art = spans("arterial")
+    assert covers(art, notes["line_flush"] + 2, ("artifact", "ABP_MEAN")), art
+    assert not covers(art, start + 200, ()), "no shading where the line was fine"
+    cvp = spans("cvp")
+    assert covers(cvp, notes["zeroing"] + 3, ("CVP",)), cvp
+    assert any("calibrating" in s or "artifact" in s for s in cvp)
+    assert covers(spans("svr"), notes["zeroing"] + 3, ("artifact", "SVR"))   # uses CVP
+    assert spans("hr") == []
+    # the provenance table gives each stored derived value's quality
+    prov = root.find(f".//{XHTML}details[@id='provenance-SVR']")
+    cells = [td.text for td in prov.iter(f"{XHTML}td")]
+    assert "artifact" in cells and "ok" in cells

@@ -29,6 +29,7 @@ from rich.table import Table
 
 from .. import CAUTION, query
 from ..core.argtypes import number_above, whole_number
+from ..core.quality import QUALITIES
 from ..config import (check_config_file, load_for_command,
                       with_overrides)
 from ..core.config import Config
@@ -46,6 +47,8 @@ from ..review.cli import add_parsers as add_review_parsers
 from ..store import StoreError, open_engine
 from ..store.cli import add_parser as add_db_parser
 from .demo import demo_lines, run_demo
+from .status import add_parser as add_status_parser
+from .workers import run_workers
 from .watch import run_watch
 
 try:
@@ -166,8 +169,18 @@ def cmd_query(args) -> int:
         return 2
     try:
         engine = open_engine(url, create=False)
-        n = query.write(query.rows(engine, args.kind, args.bed, args.param, since, args.limit),
-                        args.format, kind=args.kind)
+        quality = None
+        if args.quality:
+            quality = [q.strip() for q in args.quality.split(",") if q.strip()]
+            bad = [q for q in quality if q not in QUALITIES]
+            if bad or args.kind not in ("observations", "derived"):
+                err.print(f"[red]error:[/] --quality: " + (
+                    f"unknown {', '.join(map(repr, bad))}; one or more (comma-separated) of "
+                    f"{', '.join(QUALITIES)}" if bad else
+                    "applies to observations and derived values only"), highlight=False)
+                return 2
+        n = query.write(query.rows(engine, args.kind, args.bed, args.param, since, args.limit,
+                                   quality), args.format, kind=args.kind)
     except StoreError as e:
         err.print(f"[red]error:[/] {e}", highlight=False)
         return 1
@@ -214,6 +227,8 @@ def cmd_run(args) -> int:
     cfg = with_overrides(live_config(args.config), args.broker, args.db)
     setup_logging(args.log_level)
     log.info("%s", CAUTION)
+    if cfg.workers.enabled:
+        return run_workers(cfg, args.hl7_listen)
     offline = status_payload(cfg.instance, "offline", None, reason="connection lost")
     try:
         transport = MqttTransport(cfg.broker, will=(status_topic(cfg), offline))
@@ -432,6 +447,9 @@ def add_store_parsers(sub) -> None:
     q.add_argument("--param", metavar="P", help="parameter (or rule id for alarms)")
     q.add_argument("--since", metavar="TIME", help="RFC 3339 time, e.g. 2026-12-01T08:00:00Z")
     q.add_argument("--limit", type=non_negative_int, metavar="N", help="at most N rows")
+    q.add_argument("--quality", metavar="Q[,Q]", help="observations and derived values of "
+                   "these qualities only: ok, questionable, artifact, calibrating, test, "
+                   "invalid (e.g. --quality ok)")
     q.add_argument("--format", choices=("table", "jsonl", "csv"), default="table")
     q.set_defaults(func=cmd_query)
 
@@ -546,6 +564,7 @@ def build_parser() -> argparse.ArgumentParser:
     add_watch_parser(sub)
     add_review_parsers(sub)
     add_db_parser(sub)
+    add_status_parser(sub)
     if add_simulate_parser is not None:
         add_simulate_parser(sub, publisher=publish_lines, hl7=hl7_cli)
         add_validate_parser(sub)

@@ -48,6 +48,11 @@ class Summary:
                 if isinstance(v, list) and v:
                     b["values"][p] = v[0]
             b["values"].update(payload.get("values") or {})
+            # a value that is not ok (an artifact, a device status) is named, not shown
+            marks = payload.get("quality")
+            b["marks"] = {p: m["quality"] for p, m in marks.items()
+                          if isinstance(m, dict) and m.get("quality") not in (None, "ok")
+                          } if isinstance(marks, dict) else {}
         elif t.kind == "alarm":
             if "state" in payload:
                 b["alarms"] = payload["state"]
@@ -66,8 +71,12 @@ class Summary:
                 mean = v.get("ABP_MEAN", v.get("NIBP_MEAN"))
                 if mean is not None:
                     v["MAP"] = mean
-            shown = " ".join(f"{p} {fmt_value(p, v[p])}" for p in
-                             ("HR", "MAP", "CVP", "CO", "CI", "SVR", "SI", "SPO2") if p in v)
+            marks = b.get("marks") or {}
+            if "MAP" in marks or "ABP_MEAN" in marks:
+                marks.setdefault("MAP", marks.get("ABP_MEAN") or marks["MAP"])
+            shown = " ".join(f"{p} ({marks[p]})" if p in marks else f"{p} {fmt_value(p, v[p])}"
+                             for p in ("HR", "MAP", "CVP", "CO", "CI", "SVR", "SI", "SPO2")
+                             if p in v or p in marks)
             st = b["alarms"]
             alarms = ""
             if isinstance(st, dict) and st.get("count"):

@@ -201,6 +201,12 @@ class AlarmBook:
                 return a
         return None
 
+    def seed_ids(self, counts: dict[tuple[str, str], int]) -> None:
+        """Go on numbering alarm ids after ``counts`` ((bed, rule) -> the last n used), e.g.
+        those already stored by another process, so a resumed book never reuses an id."""
+        for key, n in counts.items():
+            self._count[key] = max(self._count.get(key, 0), n)
+
     def _next_id(self, bed: str, rule: str) -> str:
         n = self._count.get((bed, rule), 0) + 1
         self._count[(bed, rule)] = n

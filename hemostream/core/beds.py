@@ -19,7 +19,8 @@ class BedState:
         self.latest: dict[str, Current] = {}
         self.newest = -math.inf            # newest measurement time seen (event time)
         self.bsa: tuple[float, float] | None = None
-        self.stored: dict[str, tuple[float, float]] = {}   # derived param -> (time, value)
+        #: derived param -> (time, value, quality) last stored
+        self.stored: dict[str, tuple[float, float, str]] = {}
 
     def reset(self) -> None:
         self.latest.clear()

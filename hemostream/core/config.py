@@ -141,6 +141,10 @@ class BrokerConfig(BaseModel):
     model_config = _STRICT
     url: str = "mqtt://127.0.0.1:1883"
     client_id: str = "hemostream-1"
+    #: MQTT protocol version: "5" (default) or "3.1.1" (for brokers that speak only 3.1.1;
+    #: session expiry, receive maximum and maximum packet size are MQTT 5 only and then come
+    #: from the broker's own settings, with a note in the log)
+    protocol: Literal["5", "3.1.1"] = "5"
     username: str | None = None
     password_env: str | None = None
     password_file: str | None = None
@@ -173,6 +177,32 @@ class BrokerConfig(BaseModel):
     #: outgoing QoS 1 messages in flight / queued in the client
     outgoing_inflight: Annotated[int, Field(ge=1)] = 100
     outgoing_queue: Annotated[int, Field(ge=0)] = 20000
+
+
+class WorkersConfig(BaseModel):
+    """[workers]: several ``hemostream run`` processes with the same configuration and the
+    same PostgreSQL database share the units by lease (docs/workers.md)."""
+
+    model_config = _STRICT
+    #: share the units with other workers (needs a PostgreSQL store.url)
+    enabled: bool = False
+    #: this worker's name in the lease table; empty: host name and process id
+    name: str = ""
+    #: a worker that stops renewing loses its units this long after its last renewal
+    lease_s: Annotated[float, Field(gt=0)] = 10.0
+    #: how often leases are renewed and the sharing is looked at again
+    check_every_s: Annotated[float, Field(gt=0)] = 1.0
+    #: stored history (seconds before the newest stored message) a new owner feeds through
+    #: the rules again, without storing or publishing, to rebuild trend windows and alarm
+    #: states before it takes new messages
+    rebuild_s: Annotated[float, Field(ge=0)] = 1800.0
+
+    @model_validator(mode="after")
+    def _renew_in_time(self) -> "WorkersConfig":
+        if self.check_every_s * 2 > self.lease_s:
+            raise ValueError("workers.check_every_s must be at most half of workers.lease_s "
+                             "(a lease is renewed at least twice before it runs out)")
+        return self
 
 
 class ConfigDeprecation(FutureWarning):
@@ -218,6 +248,8 @@ class Config(BaseModel):
     derive: DeriveConfig = Field(default_factory=DeriveConfig)
     store: StoreConfig = Field(default_factory=StoreConfig)
     broker: BrokerConfig = Field(default_factory=BrokerConfig)
+    #: several workers sharing the units (docs/workers.md)
+    workers: WorkersConfig = Field(default_factory=WorkersConfig)
     #: trends, limit and pattern rules, fluid challenges, alarm lifecycle (configs/rules.toml)
     rules: RulesConfig = Field(default_factory=RulesConfig)
     #: other intakes besides MQTT: [intake.hl7], HL7 v2 (IHE PCD-01) over MLLP (docs/hl7.md)

@@ -31,7 +31,7 @@ def inputs_json(inputs: Iterable[tuple[str, float]]) -> str:
 
 #: column order of the observation row tuples
 OBSERVATION_COLUMNS = ("message_id", "bed_id", "param", "time", "value", "unit", "raw_value",
-                       "raw_unit", "status", "late")
+                       "raw_unit", "status", "late", "quality")
 
 
 @dataclass

@@ -32,6 +32,7 @@ from .outputs import (OBSERVATION_COLUMNS, Counters, Outputs,  # noqa: F401  (re
 from .rejects import (RecordingLineBytes, Reject, category_of,  # noqa: F401
                       format_validation_error, reject_row, short)
 from .derive import DERIVED_UNITS, Current, derive_all, bsa_dubois, bsa_mosteller
+from .quality import ARTIFACT, OK, from_status, worst
 from .rules.phrases import phrase
 from .rules.protocol import RulesLayer
 from .units import BY_DIMENSION, CANONICAL, UNITS
@@ -329,6 +330,7 @@ class Processor:
             self.counters.late += 1
         skew = self.cfg.ingest.max_clock_skew_s
         rows = self.out.observations
+        first = len(rows)
         conv = self._conv
         new: set[str] = set()
         nonvalid: dict[str, str] = {}
@@ -371,7 +373,8 @@ class Processor:
                              topic, payload, rx, i, msg.device, msg.seq)
                 continue
             status = o.status
-            rows.append((mid, bed_id, p, ot, value, cunit, raw, o.unit, status, late))
+            rows.append((mid, bed_id, p, ot, value, cunit, raw, o.unit, status, late,
+                         OK if status == "valid" else from_status(status)))
             n += 1
             if late:
                 continue
@@ -388,9 +391,10 @@ class Processor:
         clock = t if t <= ahead else ahead
         if clock > bed.newest:
             bed.newest = clock
-        self._derive(bed, new, nonvalid, msg.device)
+        self._derive(bed, new, nonvalid, msg.device, first)
 
-    def _derive(self, bed: BedState, new: set[str], nonvalid: dict[str, str], device: str) -> None:
+    def _derive(self, bed: BedState, new: set[str], nonvalid: dict[str, str], device: str,
+                first: int = 0) -> None:
         now = bed.newest
         max_age = self._max_age
         cur = {p: c for p, c in bed.latest.items() if now - c.time <= max_age[p]}
@@ -415,37 +419,84 @@ class Processor:
             # its possible sources is; otherwise its limits and trends would never see it
             if name not in new and not new.isdisjoint(EFFECTIVE_SOURCES[name]):
                 new.add(name)
-        rows = self.out.derived
-        bed_id = bed.id
-        n_stored = 0
+        dts: list[float] = []
         for d in derived:
-            param, value = d[0], d[1]
-            fresh[param] = value
+            fresh[d[0]] = d[1]
             # a value derived from an output measurement belongs to that measurement's time
             dt = _output_time(d[2]) if output_new else None
             if dt is None:
                 dt = now
-            times[param] = dt
-            last = stored.get(param)
-            if (last is None or dt - last[0] >= every
-                    or abs(value - last[1]) > band * abs(last[1])):
-                stored[param] = (dt, value)
-                rows.append({"bed_id": bed_id, "param": param, "time": dt, "value": value,
-                             "unit": DERIVED_UNITS[param], "inputs": inputs_json(d[2])})
-                n_stored += 1
-        self.counters.derived_stored += n_stored
+            times[d[0]] = dt
+            dts.append(dt)
         new.update([d[0] for d in derived])
         # a value that came with this message but is already older than its maximum age is
         # stored, yet it is not current: the rules see only what is current
         new.intersection_update(fresh)
+        why: dict[str, str] = {}
+        fault: Exception | None = None
         if self.rules is not None:
-            self._rule_events(self.rules.on_values(bed.key, now, fresh, frozenset(new),
-                                                   nonvalid, device,
-                                                   {p: times[p] for p in new if p in times}))
+            try:
+                self._rule_events(self.rules.on_values(bed.key, now, fresh, frozenset(new),
+                                                       nonvalid, device,
+                                                       {p: times[p] for p in new if p in times}))
+                reasons = getattr(self.rules, "artifact_reasons", None)
+                if reasons is not None:
+                    why = reasons(bed.key, now)
+            except Exception as e:  # noqa: BLE001 - the values are stored all the same
+                fault = e
+        # quality (core/quality.py): a measured value the detector holds out is an
+        # artifact; a derived value is the worst of its inputs and of its own channel
+        if why:
+            obs_rows = self.out.observations
+            for k in range(first, len(obs_rows)):
+                r = obs_rows[k]
+                if r[10] == OK and r[2] in why:
+                    obs_rows[k] = r[:10] + (ARTIFACT,)
+        quality: dict[str, str] = {}
+        rows = self.out.derived
+        bed_id = bed.id
+        n_stored = 0
+        for d, dt in zip(derived, dts):
+            param, value = d[0], d[1]
+            q = OK
+            if why:
+                q = worst([ARTIFACT if param in why else OK]
+                          + [ARTIFACT if p in why else OK for p, _ in d[2]])
+                if q != OK:
+                    quality[param] = q
+            last = stored.get(param)
+            # a change of quality is stored too: the reader must see where an artifact ends
+            if (last is None or dt - last[0] >= every or q != last[2]
+                    or abs(value - last[1]) > band * abs(last[1])):
+                stored[param] = (dt, value, q)
+                rows.append({"bed_id": bed_id, "param": param, "time": dt, "value": value,
+                             "unit": DERIVED_UNITS[param], "inputs": inputs_json(d[2]),
+                             "quality": q})
+                n_stored += 1
+        self.counters.derived_stored += n_stored
+        if fault is not None:
+            raise fault
         if self.publish:
+            # a derived value that is not ok is not a current value: it is published apart
+            # (``withheld``), and every value that is not ok is named in ``quality``
             body: dict[str, Any] = {
-                "v": 1, "time": iso(now), "values": {d[0]: d[1] for d in derived},
+                "v": 1, "time": iso(now),
+                "values": {d[0]: d[1] for d in derived if d[0] not in quality},
                 "measured": {p: [c.value, iso(c.time)] for p, c in cur.items()}}
+            if quality:
+                body["withheld"] = {d[0]: d[1] for d in derived if d[0] in quality}
+            marks: dict[str, dict[str, str]] = {}
+            for d in derived:
+                if d[0] in quality:
+                    marks[d[0]] = {"quality": quality[d[0]],
+                                   "reason": why.get(d[0]) or _inputs_reason(d, why)}
+            for p in cur:
+                if p in why:
+                    marks[p] = {"quality": ARTIFACT, "reason": why[p]}
+            for p, st_ in nonvalid.items():
+                marks[p] = {"quality": from_status(st_), "reason": f"status {st_}"}
+            if marks:
+                body["quality"] = marks
             if nonvalid:
                 body["status"] = nonvalid
             if self.rules is not None:
@@ -535,6 +586,14 @@ class Processor:
             self._retained_rejects.add(self._retained_key)
         self.out.rejected.append(reject_row(category, reason, topic, payload, rx, obs_index,
                                             device, seq, self.cfg.ingest.stored_raw_bytes))
+
+
+def _inputs_reason(d: Any, why: dict[str, str]) -> str:
+    """Why a derived value is not ok: the first of its inputs that is held out."""
+    for p, _ in d[2]:
+        if p in why:
+            return f"{p}: {why[p]}"
+    return "input not ok"
 
 
 def _from_output(inputs: tuple[tuple[str, float], ...]) -> bool:

@@ -45,6 +45,9 @@ DERIVED_INPUTS: dict[str, tuple[tuple[str, ...], ...]] = {
 class Reading:
     value: float
     time: float
+    #: ``ok`` or why the value is not a measurement of the patient now (core/quality.py)
+    quality: str = "ok"
+    reason: str = ""
 
     def age(self, now: float) -> float:
         return max(0.0, now - self.time)
@@ -89,6 +92,14 @@ class BedState:
             if have and all(self._own_stale(p, x, now) for p, x in have):
                 return r, True
         return r, False
+
+    def mark(self, param: str) -> tuple[str, str] | None:
+        """(quality, reason) of the bed's value of ``param`` when it is not ``ok``: such a
+        value is shown as what it is, never as a plain current number."""
+        r = self.values.get(param)
+        if r is None or r.quality == "ok":
+            return None
+        return r.quality, r.reason
 
     def top_alarm(self) -> dict | None:
         return self.alarms[0] if self.alarms else None
@@ -154,16 +165,27 @@ class UnitView:
             return
         b.last_time = max(b.last_time, t)
         self.newest = max(self.newest, t)
+        marks = _marks(p.get("quality"))
         for name, v in (p.get("values") or {}).items():
             if isinstance(v, int | float):
                 b.values[name] = Reading(float(v), t)
+        # a derived value that is not ok (an artifact input): kept to be shown as such
+        for name, v in (p.get("withheld") or {}).items():
+            if isinstance(v, int | float):
+                q, why = marks.get(name, ("artifact", ""))
+                b.values[name] = Reading(float(v), t, q, why)
         for name, pair in (p.get("measured") or {}).items():
             if isinstance(pair, list) and len(pair) == 2 and isinstance(pair[0], int | float):
                 mt = parse_time_or_none(pair[1])
                 if mt is not None:
                     old = b.values.get(name)
                     if old is None or mt >= old.time:
-                        b.values[name] = Reading(float(pair[0]), mt)
+                        q, why = marks.get(name, ("ok", ""))
+                        b.values[name] = Reading(float(pair[0]), mt, q, why)
+        for name, (q, why) in marks.items():     # e.g. a channel sending "calibrating"
+            r = b.values.get(name)
+            if r is not None and r.quality == "ok":
+                b.values[name] = Reading(r.value, r.time, q, why)
         b.status = dict(p.get("status") or {})
         b.trends.update(p.get("trends") or {})
         if t - b.last_strip >= STRIP_SECONDS / b.strip_map.maxlen:
@@ -176,7 +198,7 @@ class UnitView:
     def _current(self, b: BedState, names: tuple[str, ...], now: float) -> float | None:
         for n in names:
             r, stale = b.reading(n, now)
-            if r is not None and not stale:
+            if r is not None and not stale and r.quality == "ok":
                 return r.value
         return None
 
@@ -200,3 +222,14 @@ class UnitView:
                 details = ev.get("details") or {}
                 b.profile = details.get("text") or details.get("profile_text") \
                     or details.get("profile")
+
+
+def _marks(q: Any) -> dict[str, tuple[str, str]]:
+    """The ``quality`` of a derived message: name -> (quality, reason), not-ok ones only."""
+    out: dict[str, tuple[str, str]] = {}
+    if isinstance(q, dict):
+        for name, m in q.items():
+            if isinstance(m, dict) and isinstance(m.get("quality"), str) \
+                    and m["quality"] != "ok":
+                out[name] = (m["quality"], str(m.get("reason") or ""))
+    return out

@@ -8,7 +8,9 @@ low cyan). A new (unacknowledged) alarm is drawn bold and blinking; an acknowled
 steady and dim, an audio-paused one with a "paused" mark; technical conditions are labelled
 "technical" and drawn in italics so they read differently from physiological ones. Values
 older than their expected interval are drawn dim and struck through with their age, never
-as current.
+as current; a value whose quality is not ``ok`` (an artifact: a closed line during a sample
+draw, a flush, a zeroing; a device status such as ``calibrating``) is drawn dim and in
+italics with its quality and reason, never as a plain current number.
 """
 
 from __future__ import annotations
@@ -105,12 +107,16 @@ def sparkline(values, width: int, min_span: float = 0.0) -> str:
 
 
 def value_text(b: BedState, param: str, now: float, show_age_after: float = 10.0,
-               fmt: str | None = None) -> Text:
-    """A value with its trend arrow; dim and struck through with its age when stale."""
+               fmt: str | None = None, reason: bool = True) -> Text:
+    """A value with its trend arrow; dim and struck through with its age when stale; dim,
+    in italics and with its quality (and, with ``reason``, why) when it is not ok."""
     r, stale = b.reading(param, now)
     if r is None:
         return Text("--", style="dim")
     s = fmt.format(r.value) if fmt else fmt_value(param, r.value)
+    mark = b.mark(param)
+    if mark is not None:
+        return _marked(s, mark if reason else (mark[0], ""))
     t = Text(s, style="dim strike" if stale else "bold")
     if b.status.get(param) and b.status[param] != "valid":
         t.append(f" {b.status[param]}", style="magenta")
@@ -124,7 +130,14 @@ def value_text(b: BedState, param: str, now: float, show_age_after: float = 10.0
     return t
 
 
-def pressure_text(b: BedState, now: float) -> Text:
+def _marked(s: str, mark: tuple[str, str]) -> Text:
+    """A value that is not ok: dim, in italics, with its quality and reason."""
+    q, why = mark
+    return Text.assemble((s, "dim italic"), (f" {q}" + (f": {why}" if why else ""),
+                                             "magenta dim"))
+
+
+def pressure_text(b: BedState, now: float, reason: bool = True) -> Text:
     """Arterial pressure as sys/dia (mean) with its source: line preferred over cuff."""
     for src, (s, d, m), label in (("line", ("ABP_SYS", "ABP_DIA", "ABP_MEAN"), "ABP"),
                                   ("cuff", ("NIBP_SYS", "NIBP_DIA", "NIBP_MEAN"), "NIBP")):
@@ -138,6 +151,10 @@ def pressure_text(b: BedState, now: float) -> Text:
         txt = f"{rs.value:.0f}/{rd.value:.0f}" if rd is not None else f"{rs.value:.0f}/--"
         if mean is not None:
             txt += f" ({mean:.0f})"
+        mark = b.mark(s) or b.mark(d) or b.mark(m)
+        if mark is not None:
+            return Text.assemble((f"{label} ", "dim"),
+                                 _marked(txt, mark if reason else (mark[0], "")))
         t = Text.assemble((f"{label} ", "dim"), (txt, "dim strike" if stale else "bold"))
         arrow = ARROW.get(b.trends.get("MAP", ""), "")
         if arrow and not stale:
@@ -181,16 +198,20 @@ def alarm_label(a: dict) -> Text:
     return t
 
 
+TILE_PARAMS = ("HR", "SPO2", "SI", "ABP_SYS", "ABP_DIA", "ABP_MEAN", "NIBP_SYS", "NIBP_DIA",
+               "NIBP_MEAN", "CVP", "CO", "CI", "SVR")
+
+
 def tile(b: BedState, now: float, width: int, selected: bool) -> Panel:
+    def v(p: str) -> Text:     # a tile is narrow: the reasons go to its title
+        return value_text(b, p, now, reason=False)
     lines = [
-        Text.assemble(_pair("HR", value_text(b, "HR", now)), "  ",
-                      _pair("SpO2", value_text(b, "SPO2", now)), "  ",
-                      _pair("SI", value_text(b, "SI", now))),
-        pressure_text(b, now),
-        Text.assemble(_pair("CVP", value_text(b, "CVP", now)), "  ",
-                      _pair("CO", value_text(b, "CO", now)), "  ",
-                      _pair("CI", value_text(b, "CI", now))),
-        Text.assemble(_pair("SVR", value_text(b, "SVR", now)), "  ", readout_short(b)),
+        Text.assemble(_pair("HR", v("HR")), "  ", _pair("SpO2", v("SPO2")), "  ",
+                      _pair("SI", v("SI"))),
+        pressure_text(b, now, reason=False),
+        Text.assemble(_pair("CVP", v("CVP")), "  ", _pair("CO", v("CO")), "  ",
+                      _pair("CI", v("CI"))),
+        Text.assemble(_pair("SVR", v("SVR")), "  ", readout_short(b)),
     ]
     strip_w = max(10, width - 10)
     # scale floors: 20 mm[Hg] of MAP and 1 L/min of CO fill the strip (project choice)
@@ -209,6 +230,9 @@ def tile(b: BedState, now: float, width: int, selected: bool) -> Panel:
         if len(b.alarms) > 1:
             subtitle.append(f" +{len(b.alarms) - 1}", style="dim")
     title = Text(b.bed, style="reverse bold" if selected else "bold")
+    reasons = dict.fromkeys(m[1] or m[0] for m in map(b.mark, TILE_PARAMS) if m is not None)
+    if reasons:
+        title.append(" " + ", ".join(reasons), style="magenta")
     for line in lines:
         line.truncate(width - 4, overflow="ellipsis")
         line.no_wrap = True
@@ -281,7 +305,7 @@ def _current_of(b: BedState, now: float):
     """The bed's current (not stale) value of a parameter, or None."""
     def current(param: str) -> float | None:
         r, stale = b.reading(param, now)
-        return r.value if r is not None and not stale else None
+        return r.value if r is not None and not stale and r.quality == "ok" else None
     return current
 
 
@@ -356,17 +380,22 @@ def bed_screen(view: UnitView, scr: Screen, b: BedState, now: float, width: int,
                alarm_index: int = 0) -> RenderableType:
     """One bed: every parameter with age and trend, its alarms, history and notes."""
     params = Table(box=None, header_style="bold", pad_edge=False)
-    for col in ("param", "value", "unit", "age", "trend"):
+    for col in ("param", "value", "unit", "age", "trend / quality"):
         params.add_column(col, no_wrap=True)
     for p in DETAIL_PARAMS:
         r, stale = b.reading(p, now)
         if r is None:
             continue
         unit = unit_of(p)
-        params.add_row(p, Text(fmt_value(p, r.value),
-                               style="dim strike" if stale else "bold"),
-                       unit, ("stale " if stale else "") + fmt_age(r.age(now)),
-                       b.trends.get(p, ""))
+        mark = b.mark(p)
+        if mark is None:
+            value = Text(fmt_value(p, r.value), style="dim strike" if stale else "bold")
+            last = Text(b.trends.get(p, ""))
+        else:          # not ok: dim, and the reason where the trend would be
+            value = _marked(fmt_value(p, r.value), (mark[0], ""))
+            last = Text(mark[1], style="magenta dim")
+        params.add_row(p, value, unit, ("stale " if stale else "") + fmt_age(r.age(now)),
+                       last)
     alarms = Table(box=None, header_style="bold", pad_edge=False, expand=True)
     alarms.add_column("", width=1)
     alarms.add_column("active alarm", no_wrap=True, overflow="ellipsis")

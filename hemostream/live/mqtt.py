@@ -16,6 +16,9 @@ Choices, each tied to the MQTT 5.0 specification (OASIS Standard, 7 March 2019):
   discards them); anything below it but over the wire format's payload limit reaches the core
   and is stored as a reject.
 - A retained last will (section 3.1.2.5) publishes "offline" if the connection dies.
+- ``broker.protocol = "3.1.1"`` speaks MQTT 3.1.1 (OASIS Standard, 29 October 2014) for
+  brokers without MQTT 5: Clean Session 0 (its section 3.1.2.4) keeps the session; the MQTT 5
+  properties above are not sent (a note in the log says so) and the broker's settings apply.
 
 All paho calls happen on the event loop thread (aiomqtt drives paho from the loop).
 """
@@ -29,7 +32,7 @@ import ssl
 import time
 from dataclasses import dataclass
 from pathlib import Path
-from typing import AsyncIterator, Callable
+from typing import Any, AsyncIterator, Callable
 from urllib.parse import urlsplit
 
 import aiomqtt
@@ -48,6 +51,21 @@ log = logging.getLogger("hemostream.live.mqtt")
 REFUSED = {0x85: "client identifier not valid", 0x86: "bad user name or password",
            0x87: "not authorized", 0x8A: "banned", 0x8C: "bad authentication method"}
 PASSWORD_ENV_DEFAULT = "HEMOSTREAM_MQTT_PASSWORD"
+
+
+_NOTED: set[str] = set()
+
+
+def _note_v311(cfg: BrokerConfig) -> None:
+    """Say once per process what MQTT 3.1.1 cannot ask of the broker."""
+    if "v311" in _NOTED:
+        return
+    _NOTED.add("v311")
+    log.info("MQTT 3.1.1 (broker.protocol): the session expiry (%d s), receive maximum (%d) "
+             "and maximum packet size (%d bytes) are MQTT 5 features and are not sent; the "
+             "broker's own settings for them apply, and a session taken over by another "
+             "client is not reported as such", cfg.session_expiry_s, cfg.receive_maximum,
+             cfg.max_packet_bytes)
 
 
 class BrokerSettingsError(ValueError):
@@ -155,23 +173,32 @@ class MqttTransport:
 
     def _make_client(self) -> aiomqtt.Client:
         cfg = self.cfg
-        props = Properties(PacketTypes.CONNECT)
-        if self.persistent:
-            props.SessionExpiryInterval = cfg.session_expiry_s
-        props.ReceiveMaximum = cfg.receive_maximum
-        props.MaximumPacketSize = cfg.max_packet_bytes
         will = None
         if self.will is not None:
             will = aiomqtt.Will(self.will[0], self.will[1], qos=1, retain=True)
-        client = aiomqtt.Client(
-            self.address.host, self.address.port, identifier=cfg.client_id,
-            username=self.username, password=self._password,
-            protocol=aiomqtt.ProtocolVersion.V5, clean_start=not self.persistent,
-            properties=props, will=will, keepalive=cfg.keepalive_s,
-            timeout=cfg.connect_timeout_s, tls_context=self._tls,
-            max_inflight_messages=cfg.outgoing_inflight,
+        common: dict[str, Any] = dict(
+            identifier=cfg.client_id, username=self.username, password=self._password,
+            will=will, keepalive=cfg.keepalive_s, timeout=cfg.connect_timeout_s,
+            tls_context=self._tls, max_inflight_messages=cfg.outgoing_inflight,
             max_queued_outgoing_messages=cfg.outgoing_queue,
             logger=logging.getLogger("hemostream.live.paho"))
+        if cfg.protocol == "3.1.1":
+            # MQTT 3.1.1 section 3.1.2.4: Clean Session 0 keeps the session with no expiry
+            # the client can set; the broker's settings decide how long it lasts
+            _note_v311(cfg)
+            client = aiomqtt.Client(self.address.host, self.address.port,
+                                    protocol=aiomqtt.ProtocolVersion.V311,
+                                    clean_session=not self.persistent, **common)
+        else:
+            props = Properties(PacketTypes.CONNECT)
+            if self.persistent:
+                props.SessionExpiryInterval = cfg.session_expiry_s
+            props.ReceiveMaximum = cfg.receive_maximum
+            props.MaximumPacketSize = cfg.max_packet_bytes
+            client = aiomqtt.Client(self.address.host, self.address.port,
+                                    protocol=aiomqtt.ProtocolVersion.V5,
+                                    clean_start=not self.persistent, properties=props,
+                                    **common)
         inner: paho.Client = client._client          # aiomqtt issue #345 workaround
         inner.manual_ack_set(True)
         on_connect = inner.on_connect

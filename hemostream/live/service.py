@@ -218,6 +218,8 @@ class Service:
         self._outstanding = 0               # batches submitted, not yet committed
         self._committed_evt = asyncio.Event()
         self._dropped: bool | None = None    # a working connection was lost (taken over?)
+        #: (time, arrival-to-commit seconds) of the last committed batch
+        self.last_commit: tuple[float, float] | None = None
         #: other intakes (objects with async start() / close()), e.g. the HL7 MLLP listener
         self.intakes: list[Any] = []
         self._external: set[asyncio.Future] = set()
@@ -269,16 +271,10 @@ class Service:
             log.error("%s", e)
             return 1
         sqlite_synchronous(engine, cfg.store.sqlite_synchronous)
-        await asyncio.to_thread(record_config, engine, cfg)   # the configuration in force
-        resume = await asyncio.to_thread(load_resume, engine)
-        self.proc = Processor(cfg, rules=self.rules, next_ids=resume.next_ids,
-                              known_beds=resume.beds, known_messages=resume.messages,
-                              known_retained_rejects=resume.retained_rejects)
-        self.writer = Writer(engine, max_batches=16, store_cfg=cfg.store)
+        known = await self.prepare(engine)
         self.inq: asyncio.Queue = asyncio.Queue(b.queue_size)
-        log.info("hemostream %s: database %s, %d bed(s) and %d recent message identities "
-                 "known, subscribing to %s", cfg.instance, _safe_url(self.db_url),
-                 len(resume.beds), len(resume.messages), ", ".join(self.filters))
+        log.info("hemostream %s: database %s, %s, subscribing to %s", cfg.instance,
+                 _safe_url(self.db_url), known, ", ".join(self.filters))
         for intake in self.intakes:
             await intake.start()
         conn = asyncio.create_task(self._connection_loop(), name="hemostream-connection")
@@ -295,6 +291,19 @@ class Service:
         finally:
             await self._shutdown(conn, proc, tick, stop, engine)
         return 1 if self.fatal else 0
+
+    async def prepare(self, engine) -> str:
+        """Build the processor (resumed from the database) and the writer over ``engine``;
+        returns what is known, for the log. (The workers' per-unit service builds its own.)"""
+        cfg = self.cfg
+        await asyncio.to_thread(record_config, engine, cfg)   # the configuration in force
+        resume = await asyncio.to_thread(load_resume, engine)
+        self.proc = Processor(cfg, rules=self.rules, next_ids=resume.next_ids,
+                              known_beds=resume.beds, known_messages=resume.messages,
+                              known_retained_rejects=resume.retained_rejects)
+        self.writer = Writer(engine, max_batches=16, store_cfg=cfg.store)
+        return (f"{len(resume.beds)} bed(s) and {len(resume.messages)} recent message "
+                "identities known")
 
     async def _shutdown(self, conn, proc, tick, stop, engine) -> None:
         log.info("stopping: no more messages taken; flushing the database")
@@ -520,7 +529,9 @@ class Service:
                 h.acked += 1
             else:
                 h.stale_acks += 1
-        h.committed(n, self.clock() - oldest_rx, self.writer.last_latency_s)
+        now = self.clock()
+        h.committed(n, now - oldest_rx, self.writer.last_latency_s)
+        self.last_commit = (now, now - oldest_rx)     # when, and arrival-to-commit lag (s)
         self._committed_evt.set()
 
     async def _ticker(self) -> None:

@@ -288,19 +288,20 @@ def bed_page(bd: BedData, lim: LimitsSource, t0: float, t1: float, end: float, *
             continue
         cap = 400
         body = []
-        for t, v, unit, inputs in rows_d[:cap]:
+        for t, v, unit, inputs, quality in rows_d[:cap]:
             inp = ", ".join(f"{escape(str(p))} at {hhmmss(float(ti))} "
                             f"({span_text(max(0.0, t - float(ti)))} before)"
                             for p, ti in inputs if isinstance(ti, int | float))
             body.append([escape(when(t)), fmt_value(param, v),
-                         escape(unit), inp])
+                         escape(unit), inp, escape(quality)])
         n_prov += len(body)
         more = (f" (first {cap} of {len(rows_d)}; all with "
                 f"<code>hemostream query derived --param {param}</code>)"
                 if len(rows_d) > cap else "")
         parts.append(f'<details id="provenance-{param}"><summary>{param}: {len(rows_d)} '
                      f"stored value(s){more}</summary>"
-                     + _table(["time", "value", "unit", "inputs (measured at)"], body, {1},
+                     + _table(["time", "value", "unit", "inputs (measured at)", "quality"],
+                              body, {1},
                               cls="provenance") + "</details>")
     if not n_prov:
         parts.append("<p>No derived values in this period.</p>")

@@ -87,6 +87,8 @@ class PanelData:
     limits: list[LimitLine] = field(default_factory=list)
     refs: list[RefLine] = field(default_factory=list)
     fluid: list[InfoEvent] = field(default_factory=list)
+    #: stretches of time when a value of the panel was not ok: (from, to, qualities, params)
+    quality: list[tuple[float, float, str, str]] = field(default_factory=list)
 
 
 #: parameters read for the panels
@@ -102,24 +104,72 @@ def _median_gap(ts: list[float]) -> float:
 
 def panel_data(spec: PanelSpec, bd: BedData, cfg: Config, t0: float, t1: float) -> PanelData:
     pd = PanelData(spec.key, spec.title, spec.unit)
+    spans: list[tuple[float, float, str, str]] = []
     for s in spec.series:
         if s.source == "obs":
             rows = bd.obs.get(s.param, [])
-            valid = [(t, v) for t, v, st in rows if st == "valid"]
-            pd.invalid += [(t, v, st) for t, v, st in rows if st != "valid"]
+            # a value that is not ok (a status, an artifact) is marked, not drawn as a line
+            valid = [(t, v) for t, v, st, q in rows if q == "ok"]
+            pd.invalid += [(t, v, st if st != "valid" else q) for t, v, st, q in rows
+                           if q != "ok"]
             gap = _median_gap([t for t, _ in valid])
             style = "points" if gap >= 60 else "line"     # cuff, thermodilution
             gap_s = max(30.0, 3 * gap)
+            spans += not_ok_spans([(t, q) for t, _v, _st, q in rows], s.param, gap_s)
         else:
-            valid = [(t, v) for t, v, _u, _i in bd.derived.get(s.param, [])]
+            drows = bd.derived.get(s.param, [])
+            valid = [(t, v) for t, v, _u, _i, q in drows if q == "ok"]
+            pd.invalid += [(t, v, q) for t, v, _u, _i, q in drows if q != "ok"]
             style, gap_s = "line", max(180.0, 2.5 * cfg.store.derived_every_s)
+            spans += not_ok_spans([(t, q) for t, _v, _u, _i, q in drows], s.param, gap_s)
         if not valid:
             continue
         pd.series.append(Series(s.label, [t for t, _ in valid], [v for _, v in valid],
                                 style=style, ink=s.ink, width=s.width, dash=s.dash,
                                 gap_s=gap_s, steps=s.source == "derived"))
+    pd.quality = merge_spans(spans)
     pd.limits = limit_lines(cfg, bd.admissions, spec.limit_params, t0, t1)
     pd.refs = ref_lines(cfg, spec.limit_params)
     if spec.key == "output":
         pd.fluid = [e for e in bd.info if e.rule == "fluid_challenge" and e.transition == "result"]
     return pd
+
+
+def not_ok_spans(rows: list[tuple[float, str]], param: str, gap_s: float
+                 ) -> list[tuple[float, float, str, str]]:
+    """The stretches of one series' rows (time, quality; in time order) that are not ok: a
+    value holds until the next one of the series (at most ``gap_s``; the last one a second).
+
+    >>> not_ok_spans([(0, "ok"), (1, "artifact"), (2, "artifact"), (3, "ok")], "SI", 30)
+    [(1, 3, 'artifact', 'SI')]
+    """
+    out: list[tuple[float, float, str, str]] = []
+    for i, (t, q) in enumerate(rows):
+        if q == "ok":
+            continue
+        end = rows[i + 1][0] if i + 1 < len(rows) else t + 1.0
+        end = min(end, t + gap_s) if end > t else t + 1.0
+        if out and out[-1][2] == q and out[-1][1] >= t:
+            out[-1] = (out[-1][0], max(out[-1][1], end), q, param)
+        else:
+            out.append((t, end, q, param))
+    return out
+
+
+def merge_spans(spans: list[tuple[float, float, str, str]]
+                ) -> list[tuple[float, float, str, str]]:
+    """Overlapping stretches (of any series of a panel) as one, with every quality and
+    parameter named (comma-separated, in order of first appearance).
+
+    >>> merge_spans([(5, 8, "artifact", "SI"), (0, 6, "calibrating", "CVP"), (9, 10, "artifact", "SI")])
+    [(0, 8, 'calibrating, artifact', 'CVP, SI'), (9, 10, 'artifact', 'SI')]
+    """
+    out: list[tuple[float, float, list[str], list[str]]] = []
+    for a, b, q, p in sorted(spans):
+        if out and a <= out[-1][1]:
+            last = out[-1]
+            out[-1] = (last[0], max(last[1], b), last[2] + [q] * (q not in last[2]),
+                       last[3] + [p] * (p not in last[3]))
+        else:
+            out.append((a, b, [q], [p]))
+    return [(a, b, ", ".join(q), ", ".join(p)) for a, b, q, p in out]

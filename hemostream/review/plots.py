@@ -173,6 +173,24 @@ def _shade_alarms(ax, periods: list[AlarmPeriod], t0: float, t1: float, end: flo
     return n, used
 
 
+def _shade_quality(ax, spans: list[tuple[float, float, str, str]], t0: float, t1: float,
+                   hover: dict[str, str]) -> int:
+    """Shade (grey, hatched: no alarm colour) the stretches when a value of the panel was not
+    ok (core/quality.py); the hover says which values and why. Returns how many."""
+    n = 0
+    for a, b, q, who in spans:
+        a, b = max(a, t0), min(b, t1)
+        if b <= a:
+            continue
+        n += 1
+        gid = f"quality-span-{n}"
+        ax.axvspan(x_of(a), x_of(b), facecolor="#e4e4e4", edgecolor="#9a9a9a", hatch="////",
+                   lw=0, alpha=0.7, gid=gid, zorder=0.6)
+        hover[gid] = (f"values not ok ({q}) {hhmmss(a)} to {hhmmss(b)} "
+                      f"({span_text(b - a)}): {who}")
+    return n
+
+
 #: how a note is drawn: (colour, line style, line width); the default for every other kind
 NOTE_STYLES = {"deterioration_onset": ("#000000", "-", 1.4)}
 NOTE_DEFAULT = ("#555555", ":", 1.1)
@@ -292,7 +310,10 @@ def panel_figure(pd: PanelData, periods: list[AlarmPeriod], notes: list[dict[str
         ax.plot([x_of(a) for a, _, _ in inv], [b for _, b, _ in inv],
                 ls="none", marker="x", ms=3, color="#9a9a9a", zorder=2.5)
         handles.append(Line2D([], [], ls="none", marker="x", ms=3, color="#9a9a9a",
-                              label="not valid (status)"))
+                              label="value not ok (status, artifact)"))
+    if _shade_quality(ax, pd.quality, t0, t1, hover):
+        handles.append(Patch(facecolor="#e4e4e4", edgecolor="#9a9a9a", hatch="////", lw=0,
+                             label="values not ok (artifact, status)"))
     # limits: dashed lines, labelled at the right; the band inside a parameter's limits
     # lightly shaded (one band per limited parameter; one-sided limits run to the edge)
     by_param: dict[str, dict[str, LimitLine]] = {}

@@ -93,8 +93,10 @@ def commands(engine: Engine, bed_ids: Iterable[int] | None = None) -> list[dict[
 @dataclass
 class BedData:
     bed: BedInfo
-    obs: dict[str, list[tuple[float, float, str]]] = field(default_factory=dict)
-    derived: dict[str, list[tuple[float, float, str, list]]] = field(default_factory=dict)
+    #: param -> (time, value, status, quality)
+    obs: dict[str, list[tuple[float, float, str, str]]] = field(default_factory=dict)
+    #: param -> (time, value, unit, inputs, quality)
+    derived: dict[str, list[tuple[float, float, str, list, str]]] = field(default_factory=dict)
     periods: list[AlarmPeriod] = field(default_factory=list)
     info: list[InfoEvent] = field(default_factory=list)
     notes: list[dict[str, Any]] = field(default_factory=list)
@@ -110,16 +112,16 @@ def load_bed(engine, bed: BedInfo, t0: float, t1: float, obs_params: list[str],
     bd = BedData(bed)
     margin = 120.0
     with engine.connect() as conn:
-        for t, _m, _b, param, value, _u, status, *_ in iter_observations(
+        for t, _m, _b, param, value, _u, status, *_, quality in iter_observations(
                 conn, [bed.id], obs_params, t0 - margin, t1 + margin):
-            bd.obs.setdefault(param, []).append((t, value, status))
-        for t, _q, _b, param, value, unit, text in iter_derived(
+            bd.obs.setdefault(param, []).append((t, value, status, quality))
+        for t, _q, _b, param, value, unit, text, quality in iter_derived(
                 conn, [bed.id], der_params, t0 - margin, t1 + margin):
             try:
                 inputs = json.loads(text)
             except ValueError:
                 inputs = []
-            bd.derived.setdefault(param, []).append((t, value, unit, inputs))
+            bd.derived.setdefault(param, []).append((t, value, unit, inputs, quality))
         bd.admissions = [dict(r._mapping) for r in conn.execute(
             select(adm_t).where(adm_t.c.bed_id == bed.id).order_by(adm_t.c.time, adm_t.c.id))]
     bd.periods, bd.info = build_periods(alarm_rows(engine, [bed.id]))

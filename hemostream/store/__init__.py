@@ -231,13 +231,15 @@ def _engine_of(db: Any) -> tuple[Engine, bool]:
 def observation_rows(db: Any) -> list[dict[str, Any]]:
     """Every stored observation as the one-row-per-observation table had it (``message_id``,
     ``bed_id``, ``param``, ``time``, ``value``, ``unit``, ``raw_value``, ``raw_unit``,
-    ``status``, ``late``), by time then arrival. ``db``: an engine, a URL or a SQLite path."""
+    ``status``, ``late``) and its ``quality``, by time then arrival. ``db``: an engine, a
+    URL or a SQLite path."""
     engine, own = _engine_of(db)
     try:
         with engine.connect() as conn:
             return [{"message_id": mid, "bed_id": b, "param": p, "time": t, "value": v,
-                     "unit": u, "raw_value": rv, "raw_unit": ru, "status": st, "late": late}
-                    for t, mid, b, p, v, u, st, rv, ru, late in iter_observations(conn)]
+                     "unit": u, "raw_value": rv, "raw_unit": ru, "status": st, "late": late,
+                     "quality": q}
+                    for t, mid, b, p, v, u, st, rv, ru, late, q in iter_observations(conn)]
     finally:
         if own:
             engine.dispose()
@@ -245,12 +247,13 @@ def observation_rows(db: Any) -> list[dict[str, Any]]:
 
 def derived_rows(db: Any) -> list[dict[str, Any]]:
     """Every stored derived value (``bed_id``, ``param``, ``time``, ``value``, ``unit``,
-    ``inputs`` JSON text), by time then storage order."""
+    ``inputs`` JSON text, ``quality``), by time then storage order."""
     engine, own = _engine_of(db)
     try:
         with engine.connect() as conn:
-            return [{"bed_id": b, "param": p, "time": t, "value": v, "unit": u, "inputs": i}
-                    for t, _q, b, p, v, u, i in iter_derived(conn)]
+            return [{"bed_id": b, "param": p, "time": t, "value": v, "unit": u, "inputs": i,
+                     "quality": q}
+                    for t, _s, b, p, v, u, i, q in iter_derived(conn)]
     finally:
         if own:
             engine.dispose()

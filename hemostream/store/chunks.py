@@ -23,12 +23,18 @@ from sqlalchemy import delete, func, insert, select
 from sqlalchemy.engine import Connection
 
 from ..core.outputs import inputs_json
+from ..core.quality import OK, from_status
 from . import codec
 from .schema import TABLES
 
 OBS_COLS = ("o_mid", "o_param", "o_time", "o_value", "o_unit", "o_conv", "o_raw",
-            "o_raw_unit", "o_status", "o_late")
-DER_COLS = ("d_seq", "d_param", "d_time", "d_value", "d_unit", "d_inputs_text")
+            "o_raw_unit", "o_status", "o_late", "o_quality")
+DER_COLS = ("d_seq", "d_param", "d_time", "d_value", "d_unit", "d_inputs_text", "d_quality")
+#: quality columns (core/quality.py), present in a block only when needed: observations
+#: when some value's quality is not the one its status gives (an artifact), derived values
+#: when some is not ok. Without one (every chunk written before quality existed, too) an
+#: observation's quality is its status's and a derived value is ok.
+QUALITY_COLS = ("o_quality", "d_quality")
 PERM = {"o_value": "o_param", "d_value": "d_param"}
 
 #: defaults of [store] chunk_messages / chunk_segments (the writer reads the configuration)
@@ -71,7 +77,8 @@ def block_of(obs: list[tuple], der: list[dict], seq0: int) -> dict[str, Any]:
     f8, i8 = np.float64, np.int64
     blk: dict[str, Any] = {}
     if obs:
-        mid, _bed, param, t, value, unit, raw, raw_unit, status, late = zip(*obs)
+        mid, _bed, param, t, value, unit, raw, raw_unit, status, late = list(zip(*obs))[:10]
+        quality = [o[10] if len(o) > 10 else from_status(o[8]) for o in obs]
         v = np.array(value, f8)
         r = np.array(raw, f8)
         conv = v.view(i8) != r.view(i8)
@@ -79,6 +86,8 @@ def block_of(obs: list[tuple], der: list[dict], seq0: int) -> dict[str, Any]:
                    o_value=v, o_unit=list(unit), o_conv=conv, o_raw=r[conv],
                    o_raw_unit=list(raw_unit), o_status=list(status),
                    o_late=np.array(late, bool))
+        if any(q != from_status(s) for q, s in zip(quality, status)):
+            blk["o_quality"] = quality
     if der:
         times = [d["time"] for d in der]
         blk.update(d_seq=np.arange(seq0, seq0 + len(der), dtype=i8),
@@ -86,6 +95,9 @@ def block_of(obs: list[tuple], der: list[dict], seq0: int) -> dict[str, Any]:
                    d_value=np.array([d["value"] for d in der], f8),
                    d_unit=[d["unit"] for d in der],
                    d_inputs_text=[_pack_inputs(t, d["inputs"]) for t, d in zip(times, der)])
+        dq = [d.get("quality", OK) for d in der]
+        if any(q != OK for q in dq):
+            blk["d_quality"] = dq
     return blk
 
 
@@ -93,12 +105,25 @@ def merge(blocks: Sequence[dict[str, Any]]) -> dict[str, Any]:
     out: dict[str, Any] = {}
     names = [n for b in blocks for n in b]
     for name in dict.fromkeys(names):
+        if name in QUALITY_COLS:
+            out[name] = [x for b in blocks for x in qualities(b, name[0])]
+            continue
         parts = [b[name] for b in blocks if name in b]
         if isinstance(parts[0], np.ndarray):
             out[name] = np.concatenate(parts)
         else:
             out[name] = [x for p in parts for x in p]
     return out
+
+
+def qualities(b: dict[str, Any], kind: str) -> list[str]:
+    """A block's observation (``kind`` "o") or derived ("d") qualities."""
+    q = b.get(f"{kind}_quality")
+    if q is not None:
+        return q
+    if kind == "o":
+        return [from_status(s) for s in b.get("o_status", ())]
+    return [OK] * len(b.get("d_seq", ()))
 
 
 def chunk_row(bed_id: int, blk: dict[str, Any], sealed: bool, level: int) -> dict[str, Any]:
@@ -217,12 +242,16 @@ def seal(conn: Connection, bed_id: int, final: bool = True) -> int:
 
 
 def sealed_messages(conn: Connection, min_mid: int | None = None,
-                    bed_ids: Iterable[int] | None = None) -> Iterator[dict[str, Any]]:
-    """Observation messages kept inside sealed chunks (as ``messages`` rows, kind obs)."""
+                    bed_ids: Iterable[int] | None = None,
+                    rx_from: float | None = None) -> Iterator[dict[str, Any]]:
+    """Observation messages kept inside sealed chunks (as ``messages`` rows, kind obs);
+    ``rx_from``: only those that arrived then or later."""
     t = TABLES["obs_chunks"]
     stmt = select(t.c.bed_id, t.c.data).where(t.c.m_count > 0)
     if min_mid is not None:
         stmt = stmt.where(t.c.mid_max >= min_mid)
+    if rx_from is not None:
+        stmt = stmt.where(t.c.rx_max >= rx_from)
     if bed_ids is not None:
         stmt = stmt.where(t.c.bed_id.in_(list(bed_ids)))
     for c in conn.execute(stmt.order_by(t.c.id)):
@@ -231,7 +260,7 @@ def sealed_messages(conn: Connection, min_mid: int | None = None,
                 b["m_id"].tolist(), b["m_rx"].tolist(), b["m_topic"], b["m_device"],
                 b["m_seq"].tolist(), b["m_time"].tolist(), b["m_late"].tolist(),
                 b["m_nobs"].tolist()):
-            if min_mid is not None and mid < min_mid:
+            if (min_mid is not None and mid < min_mid) or (rx_from is not None and rx < rx_from):
                 continue
             yield {"id": mid, "bed_id": c.bed_id, "rx": rx, "topic": topic, "kind": "obs",
                    "device": dev, "seq": seq, "time": tm, "late": late, "n_obs": n,
@@ -268,10 +297,12 @@ def _merge_rows(chunks: Sequence[Any], rows_of) -> Iterator[tuple]:
 
 def iter_observations(conn: Connection, bed_ids: Iterable[int] | None = None,
                       params: Iterable[str] | None = None, t0: float | None = None,
-                      t1: float | None = None) -> Iterator[tuple]:
-    """(time, message_id, bed_id, param, value, unit, status, raw_value, raw_unit, late),
-    ordered by time then arrival."""
+                      t1: float | None = None, quality: Iterable[str] | None = None
+                      ) -> Iterator[tuple]:
+    """(time, message_id, bed_id, param, value, unit, status, raw_value, raw_unit, late,
+    quality), ordered by time then arrival; ``quality``: only values of these qualities."""
     want = set(params) if params is not None else None
+    qs = set(quality) if quality is not None else None
 
     def rows_of(c):
         b = decode(c.data)
@@ -279,14 +310,16 @@ def iter_observations(conn: Connection, bed_ids: Iterable[int] | None = None,
         raw[b["o_conv"]] = b["o_raw"]
         cols = (b["o_time"].tolist(), b["o_mid"].tolist(), b["o_param"],
                 b["o_value"].tolist(), b["o_unit"], b["o_status"], raw.tolist(),
-                b["o_raw_unit"], b["o_late"].tolist())
+                b["o_raw_unit"], b["o_late"].tolist(), qualities(b, "o"))
         out = []
-        for k, (t, mid, p, v, u, s, rv, ru, late) in enumerate(zip(*cols)):
+        for k, (t, mid, p, v, u, s, rv, ru, late, q) in enumerate(zip(*cols)):
             if want is not None and p not in want:
                 continue
             if (t0 is not None and t < t0) or (t1 is not None and t > t1):
                 continue
-            out.append((t, mid, k, c.bed_id, p, v, u, s, rv, ru, late))
+            if qs is not None and q not in qs:
+                continue
+            out.append((t, mid, k, c.bed_id, p, v, u, s, rv, ru, late, q))
         return out
 
     for r in _merge_rows(_chunks(conn, bed_ids, t0, t1, "obs"), rows_of):
@@ -295,20 +328,27 @@ def iter_observations(conn: Connection, bed_ids: Iterable[int] | None = None,
 
 def iter_derived(conn: Connection, bed_ids: Iterable[int] | None = None,
                  params: Iterable[str] | None = None, t0: float | None = None,
-                 t1: float | None = None) -> Iterator[tuple]:
-    """(time, seq, bed_id, param, value, unit, inputs JSON text), ordered by time, storage."""
+                 t1: float | None = None, quality: Iterable[str] | None = None
+                 ) -> Iterator[tuple]:
+    """(time, seq, bed_id, param, value, unit, inputs JSON text, quality), ordered by time,
+    storage; ``quality``: only values of these qualities."""
     want = set(params) if params is not None else None
+    qs = set(quality) if quality is not None else None
 
     def rows_of(c):
         b = decode(c.data)
         out = []
-        for t, q, p, v, u, it in zip(b["d_time"].tolist(), b["d_seq"].tolist(), b["d_param"],
-                                     b["d_value"].tolist(), b["d_unit"], b["d_inputs_text"]):
+        dq = qualities(b, "d")
+        for t, sq, p, v, u, it, q in zip(b["d_time"].tolist(), b["d_seq"].tolist(),
+                                         b["d_param"], b["d_value"].tolist(), b["d_unit"],
+                                         b["d_inputs_text"], dq):
             if want is not None and p not in want:
                 continue
             if (t0 is not None and t < t0) or (t1 is not None and t > t1):
                 continue
-            out.append((t, q, c.bed_id, p, v, u, _unpack_inputs(t, it)))
+            if qs is not None and q not in qs:
+                continue
+            out.append((t, sq, c.bed_id, p, v, u, _unpack_inputs(t, it), q))
         return out
 
     yield from _merge_rows(_chunks(conn, bed_ids, t0, t1, "derived"), rows_of)

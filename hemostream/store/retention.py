@@ -3,8 +3,8 @@ and ``hemostream db stats``.
 
 Full-rate data (chunks of observations and derived values, with the observation messages
 they hold; observation messages still in ``messages``) older than ``full_rate_days`` (by
-measurement time) is summarised into ``minute_stats`` (median, min, max, count of valid
-values per bed, parameter and minute) and removed. Minute statistics go after
+measurement time) is summarised into ``minute_stats`` (median, min, max, count of the values
+whose quality is ok, per bed, parameter and minute) and removed. Minute statistics go after
 ``minute_stats_days``; alarm events, notes, commands, admissions, rejects (by arrival) and
 their messages after ``audit_days``; the configuration in force at the audit cutoff is kept.
 A chunk is removed whole, only when all of it is older than the cutoff.
@@ -20,7 +20,7 @@ import numpy as np
 from sqlalchemy import delete, func, insert, select
 from sqlalchemy.engine import Engine
 
-from .chunks import decode
+from .chunks import decode, qualities
 from .schema import TABLES
 
 DAY = 86400.0
@@ -41,13 +41,17 @@ class PruneReport:
 
 
 def minute_stats(bed_id: int, blk: dict[str, Any]) -> list[dict[str, Any]]:
-    """Per-minute median/min/max/count of a chunk's valid observations and derived values.
+    """Per-minute median/min/max/count of a chunk's observations and derived values whose
+    quality is ok (a valid status, no artifact).
 
     >>> blk = {"o_param": ["HR", "HR", "HR"], "o_time": np.array([0.0, 30.0, 61.0]),
     ...        "o_value": np.array([70.0, 80.0, 90.0]), "o_unit": ["/min"] * 3,
     ...        "o_status": ["valid"] * 3}
     >>> [(r["minute"], r["n"], r["median"]) for r in minute_stats(1, blk)]
     [(0.0, 2, 75.0), (60.0, 1, 90.0)]
+    >>> blk["o_quality"] = ["ok", "artifact", "ok"]
+    >>> [(r["minute"], r["n"], r["max"]) for r in minute_stats(1, blk)]
+    [(0.0, 1, 70.0), (60.0, 1, 90.0)]
     """
     out: list[dict[str, Any]] = []
     for src, pre in (("obs", "o_"), ("derived", "d_")):
@@ -56,9 +60,9 @@ def minute_stats(bed_id: int, blk: dict[str, Any]) -> list[dict[str, Any]]:
         params = np.asarray(blk[pre + "param"], dtype=object)
         t, v = blk[pre + "time"], blk[pre + "value"]
         units = blk[pre + "unit"]
-        ok = np.ones(len(t), bool)
-        if src == "obs":
-            ok = np.asarray(blk["o_status"], dtype=object) == "valid"
+        # only ok values: not a status other than valid, not an artifact (a flush must not
+        # become a minute's maximum); docs/rules.md, "Quality"
+        ok = np.asarray(qualities(blk, pre[0]), dtype=object) == "ok"
         unit_of = dict(zip(blk[pre + "param"], units))
         minute = np.floor(t / 60.0) * 60.0
         for p in sorted(set(params[ok].tolist())):

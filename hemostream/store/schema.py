@@ -5,6 +5,7 @@ from __future__ import annotations
 from typing import cast
 
 from sqlalchemy import (BigInteger, Boolean, Float, ForeignKey, Index, Integer, LargeBinary,
+                        Sequence,
                         String, Table, Text, UniqueConstraint)
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
 
@@ -200,3 +201,40 @@ INSERT_ORDER = ("beds", "messages", "observations", "derived", "admissions", "no
 CHUNKED = ("observations", "derived")
 
 
+
+
+# --------------------------------------------------------------------------- workers
+
+#: fencing tokens of unit leases (PostgreSQL; one per claim, ever increasing)
+LEASE_TOKENS = Sequence("worker_lease_tokens", metadata=Base.metadata)
+
+
+class WorkerLease(Base):
+    """Which worker processes which unit (docs/workers.md). Times are the database's clock
+    (epoch seconds), so the workers' own clocks never decide who owns what.
+
+    ``token`` is a fencing token, new on every claim: the owner's every write transaction
+    first checks that the row still carries its token (``FOR SHARE``), so a worker that lost
+    the unit cannot commit another row for it; the token also picks the owner's block of
+    message and bed ids (:mod:`hemostream.live.leases`)."""
+
+    __tablename__ = "worker_leases"
+    unit: Mapped[str] = mapped_column(String(32), primary_key=True)
+    owner: Mapped[str] = mapped_column(String(128))
+    token: Mapped[int] = mapped_column(BigInteger)
+    since: Mapped[float] = mapped_column(Float(53))
+    renewed: Mapped[float] = mapped_column(Float(53))
+    expires: Mapped[float] = mapped_column(Float(53))
+    #: arrival-to-commit seconds of the owner's last committed batch, and when it was
+    lag_s: Mapped[float | None] = mapped_column(Float(53))
+    stored_at: Mapped[float | None] = mapped_column(Float(53))
+
+
+class WorkerMember(Base):
+    """A running worker, seen at its last renewal: the sharing counts the live ones."""
+
+    __tablename__ = "worker_members"
+    name: Mapped[str] = mapped_column(String(128), primary_key=True)
+    started: Mapped[float] = mapped_column(Float(53))
+    seen: Mapped[float] = mapped_column(Float(53))
+    expires: Mapped[float] = mapped_column(Float(53))

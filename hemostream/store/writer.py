@@ -64,7 +64,13 @@ def configure_chunks(engine: Engine, messages: int, segments: int) -> None:
     c.messages, c.segments = messages, segments
 
 
-def write_rows(engine: Engine, rows: dict[str, list[Any]]) -> None:
+class Fenced(RuntimeError):
+    """The writer lost its right to write (its unit's lease moved to another worker): raised
+    by a write guard inside the transaction, which is then rolled back; never retried."""
+
+
+def write_rows(engine: Engine, rows: dict[str, list[Any]],
+               guard: Callable[[Any], None] | None = None) -> None:
     """Insert rows of several tables in one transaction (foreign-key order).
 
     The hot path: each table's batch goes to the driver's ``executemany`` as one statement
@@ -73,6 +79,8 @@ def write_rows(engine: Engine, rows: dict[str, list[Any]]) -> None:
     """
     positional = engine.dialect.positional
     with engine.begin() as conn:
+        if guard is not None:       # e.g. a lease check (raises Fenced): same transaction
+            guard(conn)
         for name in INSERT_ORDER:
             if name in CHUNKED:
                 if name == "observations" and (rows.get("observations") or rows.get("derived")):
@@ -186,6 +194,8 @@ class Writer:
         self.trouble: str | None = None         # why writes are waiting, while they are
         self.trouble_since: float | None = None
         self.last_latency_s = 0.0
+        #: called with the connection first in every write transaction (raises Fenced)
+        self.guard: Callable[[Any], None] | None = None
         self._closing = False
         self._t = threading.Thread(target=self._run, name="hemostream-writer", daemon=True)
         self._t.start()
@@ -232,9 +242,9 @@ class Writer:
         pause = RETRY_FIRST_S
         while True:
             try:
-                write_rows(self.engine, rows)
+                write_rows(self.engine, rows, self.guard)
             except Exception as e:  # noqa: BLE001
-                if _content_error(e) or self._closing:
+                if isinstance(e, Fenced) or _content_error(e) or self._closing:
                     raise
                 if self.trouble is None:
                     self.trouble_since = _time.time()

@@ -134,6 +134,12 @@ class ArtifactConfig(BaseModel):
 # --------------------------------------------------------------------------- detector
 
 EMPTY: frozenset[str] = frozenset()
+#: why a channel is held out (the note kinds are said as they are: "sample_draw" ...)
+CALIBRATING = "channel calibrating"
+SIGNATURE = "flat or out-of-range trace"
+DAMPED = "damped trace"
+NOTE_WORDS = {"sample_draw": "sample draw (note)", "line_flush": "line flush (note)",
+              "zeroing": "zeroing (note)"}
 _RECENT_S = 10.0
 _NINF = float("-inf")
 
@@ -142,7 +148,7 @@ class ArtifactState:
     """Per-bed artifact state."""
 
     __slots__ = ("note_until", "auto_until", "any_until", "sig_since", "prev", "ignored",
-                 "cache_t", "cache", "damp_until", "ref")
+                 "cache_t", "cache", "damp_until", "ref", "note_why", "auto_why")
 
     def __init__(self) -> None:
         self.note_until: dict[str, float] = {}
@@ -155,6 +161,8 @@ class ArtifactState:
         self.cache: frozenset[str] = EMPTY
         self.damp_until: dict[str, float] = {}    # channel -> damped values excluded until
         self.ref: dict[str, list[float]] = {}     # channel -> [time, pulse pressure, mean]
+        self.note_why: dict[str, str] = {}        # channel -> kind of the note that opened it
+        self.auto_why: dict[str, str] = {}        # channel -> what the detector saw
 
 
 def _hold(st: "ArtifactState", ch: str, t: float, until: float) -> None:
@@ -214,11 +222,13 @@ class ArtifactDetector:
         return [c for c, ps in self.channels.items() if param in ps][:1]
 
     def note(self, st: ArtifactState, t: float, param: str | None,
-             duration_s: float | None) -> list[str]:
+             duration_s: float | None, kind: str | None = None) -> list[str]:
         """Open a noted span; return the channels it covers."""
         dur = self.cfg.note_span_s if duration_s is None else duration_s
         chs = self.channels_for(param)
         for ch in chs:
+            if t + dur >= st.note_until.get(ch, _NINF):
+                st.note_why[ch] = kind or "note"
             st.note_until[ch] = max(st.note_until.get(ch, float("-inf")), t + dur)
             st.sig_since.pop(ch, None)
             st.any_until = max(st.any_until, t + dur)
@@ -245,6 +255,7 @@ class ArtifactDetector:
                     if ch is not None:
                         until = t + cfg.post_hold_s
                         st.auto_until[ch] = max(st.auto_until.get(ch, until), until)
+                        st.auto_why[ch] = CALIBRATING
                         st.any_until = max(st.any_until, until)
                         st.cache_t = float("nan")
         if cfg.auto_detect:
@@ -285,6 +296,8 @@ class ArtifactDetector:
                     until = t + cfg.post_hold_s
                     if st.auto_until.get(ch, _NINF) < until:
                         st.auto_until[ch] = until
+                    if st.auto_why.get(ch) != CALIBRATING or st.auto_until[ch] < t:
+                        st.auto_why[ch] = SIGNATURE
                     _hold(st, ch, t, until)
                 else:
                     if st.sig_since:
@@ -338,6 +351,28 @@ class ArtifactDetector:
         st.cache_t = t
         st.cache = res
         return res
+
+    def reasons(self, st: ArtifactState, t: float) -> dict[str, str]:
+        """Each parameter held out at ``t`` and why (a note's reason first: staff said so)."""
+        if t > st.any_until:
+            return {}
+        out: dict[str, str] = {}
+        for ch, until in st.damp_until.items():
+            if until >= t:
+                for p in self.damp_spoils.get(ch, self.channels[ch]):
+                    out[p] = DAMPED
+        for ch, until in st.auto_until.items():
+            if until >= t:
+                why = st.auto_why.get(ch, SIGNATURE)
+                for p in self.channels[ch]:
+                    out[p] = why
+        for ch, until in st.note_until.items():
+            if until >= t:
+                kind = st.note_why.get(ch, "note")
+                why = NOTE_WORDS.get(kind, f"{kind} (note)")
+                for p in self.channels[ch]:
+                    out[p] = why
+        return out
 
     def suspected(self, st: ArtifactState, t: float) -> list[str]:
         """Channels whose unexplained signature has lasted ``suspected_after_s``."""

@@ -129,7 +129,7 @@ class RulesEngine:
             self.fluid.note(self._bed(bed), t, kind, param)
         if kind in self.cfg.artifacts.note_kinds:
             b = self._bed(bed)
-            chs = self.art.note(b.art, t, param, duration_s)
+            chs = self.art.note(b.art, t, param, duration_s, kind)
             for p in self.art.affected(chs):
                 tr = b.trends.get(p)
                 if tr is not None:
@@ -233,6 +233,14 @@ class RulesEngine:
                 "profile_text": PROFILE_TEXT.get(b.profile) if b.profile else None,
                 "fluid_challenge": dict(b.fc_last) if b.fc_last else None,
                 "fluid_challenge_open": b.fc is not None}
+
+    def artifact_reasons(self, bed: str, t: float) -> dict[str, str]:
+        """Parameters (measured and derived) the artifact detector holds out at ``t``, each
+        with why: what makes a value's quality ``artifact`` (:mod:`..quality`)."""
+        b = self._beds.get(bed)
+        if b is None or not self.cfg.enabled:
+            return {}
+        return self.art.reasons(b.art, t)
 
     def trend_directions(self, bed: str) -> dict[str, str]:
         """Current trend direction per trended parameter that has one (cheap: for publishing
