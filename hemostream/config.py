@@ -5,7 +5,7 @@ from __future__ import annotations
 import sys
 import tomllib
 from pathlib import Path
-from typing import Callable
+from typing import Any, Callable
 
 from pydantic import ValidationError
 
@@ -70,7 +70,7 @@ def load_for_command(path: str | Path | None, *, shipped_default: bool = False) 
 
 def with_overrides(cfg: Config, broker: str | None = None, db: str | None = None) -> Config:
     """``cfg`` with the command line's ``--broker`` and ``--db`` in place of the file's."""
-    upd = {}
+    upd: dict[str, Any] = {}
     if broker:
         upd["broker"] = cfg.broker.model_copy(update={"url": broker})
     if db:
@@ -86,14 +86,15 @@ def _runtime_problems(data: dict, cfg: Config | None) -> list[str]:
     """What ``run`` checks beyond the schema: the database URL's scheme, unit and bed ids
     given twice (the broker's settings are checked by the caller's ``extra``)."""
     out = []
-    store = data.get("store") if isinstance(data.get("store"), dict) else {}
-    url = store.get("url")
+    store = data.get("store")
+    url = store.get("url") if isinstance(store, dict) else None
     if isinstance(url, str):
         scheme = url.split(":", 1)[0].split("+", 1)[0].lower() if ":" in url else ""
         if scheme not in STORE_SCHEMES:
             out.append(f"store.url: {url.split('@')[-1]!r} is not a database URL this store "
                        "opens; expected sqlite:///FILE or postgresql+psycopg://HOST/DB")
-    units = data.get("units") if isinstance(data.get("units"), list) else []
+    units = data.get("units")
+    units = units if isinstance(units, list) else []
     seen_units: set = set()
     for i, u in enumerate(units):
         if not isinstance(u, dict):
@@ -103,7 +104,8 @@ def _runtime_problems(data: dict, cfg: Config | None) -> list[str]:
             if uid in seen_units:
                 out.append(f"units[{i}].id: unit {uid!r} is given twice")
             seen_units.add(uid)
-        beds = u.get("beds") if isinstance(u.get("beds"), list) else []
+        beds = u.get("beds")
+        beds = beds if isinstance(beds, list) else []
         seen: set = set()
         for j, b in enumerate(beds):
             if isinstance(b, str) and b in seen:

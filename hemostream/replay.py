@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import hashlib
 import json
 import time as _time
 from collections import Counter
@@ -10,13 +11,16 @@ from pathlib import Path
 from typing import Any, Callable, Literal
 
 from pydantic import BaseModel, ConfigDict, StrictStr, ValidationError
+from sqlalchemy import select
+from sqlalchemy.engine import Engine
 
 from .core.config import Config
+from .core.outputs import Outputs
 from .core.processor import Counters, Processor, RecordingLineBytes
 from .core.rules.protocol import RulesLayer
 from .core.wire import ObsMessage, Time, epoch, parse_time
 from .pipeline import make_rules
-from .store import Writer, load_resume, open_engine, record_config, rows_of
+from .store import TABLES, Writer, load_resume, open_engine, record_config, rows_of
 
 
 @dataclass
@@ -28,6 +32,9 @@ class ReplaySummary(Counters):
     lines: int = 0
     blank_lines: int = 0
     seconds: float = 0.0
+    #: rejects (counted in ``rejected``) that the database already held from an earlier
+    #: replay of the same lines, and that were not stored again
+    rejects_known: int = 0
 
     @property
     def rejected_total(self) -> int:
@@ -107,6 +114,38 @@ def feed_line(proc: Processor, line: bytes, lineno: int, max_bytes: int) -> floa
     return rx
 
 
+def _reject_key(r: Any) -> tuple:
+    """What makes two ``rejected`` rows the same reject of the same input: topic, arrival,
+    category, reason (it names the recording line), size and a digest of the kept bytes."""
+    return (r["topic"], r["rx"], r["category"], r["reason"], r["size"],
+            hashlib.blake2b(bytes(r["raw"]), digest_size=16).digest())
+
+
+def known_rejects(engine: Engine) -> set[tuple]:
+    """The :func:`_reject_key` of every stored reject (a replay again into the same database
+    stores none of them twice, as it stores no message twice)."""
+    rj = TABLES["rejected"]
+    with engine.connect() as conn:
+        rows = conn.execution_options(yield_per=1000).execute(
+            select(rj.c.topic, rj.c.rx, rj.c.category, rj.c.reason, rj.c.size, rj.c.raw))
+        return {_reject_key(r._mapping) for r in rows}
+
+
+class _NewRejects:
+    """Drops the rejects a database already holds from a drained batch, counting them."""
+
+    def __init__(self, known: set[tuple]) -> None:
+        self.known = known
+        self.dropped = 0
+
+    def __call__(self, out: Outputs) -> Outputs:
+        if self.known and out.rejected:
+            keep = [r for r in out.rejected if _reject_key(r) not in self.known]
+            self.dropped += len(out.rejected) - len(keep)
+            out.rejected = keep
+        return out
+
+
 def _count_lines(p: Path) -> int:
     n = 0
     with open(p, "rb") as f:
@@ -134,6 +173,7 @@ def replay_file(path: str | Path, db_url: str | None = None, config: Config | No
     # known by its identity, however old, so nothing is stored twice (the live service only
     # needs the recent ones: redeliveries are recent)
     resume = load_resume(engine, recent=max(200_000, _count_lines(p)))
+    fresh = _NewRejects(known_rejects(engine))
     per_key = Counter(k for k, _ in resume.messages)
     proc_cfg = cfg
     if per_key and max(per_key.values()) > cfg.ingest.dedup_per_device // 2:
@@ -173,18 +213,18 @@ def replay_file(path: str | Path, db_url: str | None = None, config: Config | No
                             _time.sleep(delay)
                 if (lineno & 255 == 0 and proc.out.row_count() >= batch_rows) or (
                         speed and proc.out.row_count()):
-                    writer.submit(rows_of(proc.drain()))
+                    writer.submit(rows_of(fresh(proc.drain())))
                 if progress is not None and lineno % 2000 == 0:
                     progress(done, total)
-        out = proc.drain()
-        writer.submit(rows_of(out))
+        writer.submit(rows_of(fresh(proc.drain())))
         writer.close()
     finally:
         engine.dispose()
     if progress is not None:
         progress(total, total)
-    for f in fields(Counters):
-        setattr(summary, f.name, getattr(proc.counters, f.name))
+    for c in fields(Counters):
+        setattr(summary, c.name, getattr(proc.counters, c.name))
     summary.rejected = dict(sorted(summary.rejected.items()))
+    summary.rejects_known = fresh.dropped
     summary.seconds = _time.perf_counter() - t0
     return summary

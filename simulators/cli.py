@@ -10,7 +10,9 @@ from __future__ import annotations
 import argparse
 import sys
 import time
-from typing import Any, Callable, Iterator
+from typing import Any, Iterator, Protocol
+
+from hemostream.core.argtypes import number_above, whole_number
 
 from .scenario import format_duration
 
@@ -28,7 +30,11 @@ recording byte for byte. Scenario files are described in docs/simulators.md.
 """
 
 
-Publisher = Callable[[Iterator[dict], str, float], int]
+class Publisher(Protocol):
+    """``publisher(lines, url, speed[, give_up_s=...]) -> exit status``."""
+
+    def __call__(self, lines: Iterator[dict], url: str, speed: float | None,
+                 give_up_s: float = ...) -> int: ...
 
 
 def add_parser(subparsers: Any, publisher: Publisher | None = None, hl7: Any = None) -> None:
@@ -100,7 +106,7 @@ def run(args: argparse.Namespace) -> int:
         _error("live publishing (--publish) is not available yet; write a recording with "
                "--out and replay it, or stream it with `hemostream replay --speed N`")
         return 2
-    hl7 = getattr(args, "hl7", None)
+    hl7: Any = getattr(args, "hl7", None)      # the HL7 intake's command module, or None
     if (args.format == "hl7" or args.publish_hl7) and hl7 is None:
         _error("HL7 output is not available in this installation")
         return 2
@@ -118,6 +124,7 @@ def run(args: argparse.Namespace) -> int:
     from .ward import generate, write_recording
 
     if args.publish:
+        assert publisher is not None              # checked above
         return _publish(args, scenario, duration, publisher)
     if args.publish_hl7:
         return int(hl7.publisher(generate(scenario, beds=args.beds, duration_s=duration,
@@ -222,24 +229,8 @@ def _duration(text: str) -> float:
     return value
 
 
-def _positive_int(text: str) -> int:
-    try:
-        n = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
-    if n < 1 or n > 10000:
-        raise argparse.ArgumentTypeError(f"expected 1 to 10000, got {n}")
-    return n
-
-
-def _positive_float(text: str) -> float:
-    try:
-        x = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
-    if not x > 0:
-        raise argparse.ArgumentTypeError(f"expected a number above 0, got {text!r}")
-    return x
+_positive_int = whole_number(1, 10000)
+_positive_float = number_above(0)
 
 
 def _start(text: str):

@@ -207,8 +207,8 @@ class Gateway:
                 vals["PAP_MEAN"] = v.pap_mean + nz[7] * sd["PAP_MEAN"]
         if mon.co == "continuous":
             # pulse-contour style: a 20 s running average of the true output, with scatter
-            a = _CO_EMA
-            self._co_ema = v.co if self._co_ema is None else self._co_ema + a * (v.co - self._co_ema)
+            k = _CO_EMA
+            self._co_ema = v.co if self._co_ema is None else self._co_ema + k * (v.co - self._co_ema)
             co = self._co_ema * (1.0 + nz[8] * sd["CO"])
             vals["CO"] = co
             vals["SV"] = co * 1000.0 / max(v.hr, 1.0)

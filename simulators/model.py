@@ -1,5 +1,8 @@
 """A closed-loop, beat-averaged model of the circulation.
 
+Size: one model: its state, controls, implicit step and read-out follow one derivation, read
+together (the equations would scatter if split).
+
 Five compartments in a ring, each a compliance with an unstressed volume::
 
     systemic arteries (SA) -> systemic veins (SV) -> right atrium (RA)
@@ -250,6 +253,7 @@ class Circulation:
     def _advance(self) -> None:
         h = self.dt
         q, v0 = self._q, self._v0
+        assert self._jac is not None          # advance() checked it
         a, b = self._jac
         self._jac = None
         # f_i = q_(i-1) - q_i, plus the external flows into the systemic veins

@@ -139,7 +139,7 @@ class Patient:
         mean_h, sd_h = (163.0, 6.5) if sex == "female" else (176.0, 7.0)
         h = float(np.clip(rng.normal(mean_h, sd_h), 148, 198))
         bmi = float(np.clip(rng.normal(26.5, 4.0), 18.5, 40))
-        draws = {
+        draws: dict[str, Any] = {
             "sex": sex,
             "height_cm": round(h),
             "weight_kg": round(bmi * (h / 100) ** 2, 1),

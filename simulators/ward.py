@@ -1,5 +1,8 @@
 """A simulated ward: scenario -> circulation model -> gateways -> recording lines.
 
+Size: the beds' per-second loop (WardBed) and the generator that interleaves the beds share
+the event and artifact plumbing; kept in one reading.
+
 :func:`generate` is a generator: it simulates the beds together one second at a time and
 yields the recording lines (``{"rx", "topic", "payload"}``) in arrival order, keeping only a
 couple of seconds of messages in memory. Each bed draws its patient, artifacts, noise,

@@ -8,7 +8,8 @@ import hidden inside a function is found as well as one at the top of a module.
   ``app``, no ``replay``;
 - ``hemostream.live`` (transport and service) imports neither ``dashboard`` nor ``app``;
 - only ``hemostream.app`` (and the ``hemostream.cli`` entry point) imports ``hemostream.app``;
-- ``simulators`` imports only ``hemostream.core.wire`` and ``hemostream.core.units``;
+- ``simulators`` imports only ``hemostream.core.wire``, ``hemostream.core.units`` and the
+  commands' shared number arguments, ``hemostream.core.argtypes``;
 - no module imports another module's underscored (private) name;
 - the composition root and the shell modules import hemostream modules at module level
   only, so an import cycle cannot hide inside a function.
@@ -102,8 +103,9 @@ def upward(src: str, target: str) -> str | None:
                                                 or src == "hemostream.cli"):
         return "only the composition root imports hemostream.app"
     if under(src, "simulators") and target not in ("hemostream.core.wire",
-                                                   "hemostream.core.units"):
-        return "simulators use only hemostream.core.wire and hemostream.core.units"
+                                                   "hemostream.core.units",
+                                                   "hemostream.core.argtypes"):
+        return "simulators use only hemostream.core.wire, units and argtypes"
     return None
 
 

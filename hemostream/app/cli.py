@@ -1,5 +1,8 @@
 """The ``hemostream`` command: every subcommand is registered here, the composition root.
 
+Size: every subcommand's parser and small handler sit in this one composition root for now;
+to be split by command group (issue 16).
+
 ``replay``, ``query`` and ``check-config`` (storage and the core), ``run`` and ``ack`` (the
 live service over a broker), ``demo`` (:mod:`.demo`), ``watch`` (:mod:`.watch`), ``compare``
 and ``report`` (implemented in :mod:`hemostream.review`), ``db`` (:mod:`hemostream.store.cli`)
@@ -25,6 +28,7 @@ from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
 from rich.table import Table
 
 from .. import CAUTION, query
+from ..core.argtypes import number_above, whole_number
 from ..core.quality import QUALITIES
 from ..config import (check_config_file, load_for_command,
                       with_overrides)
@@ -33,7 +37,7 @@ from ..core.redact import RedactingFilter
 from ..core.wire import ID_RE, command_body, encode, topic
 from ..live.health import status_payload
 from ..live.mqtt import BrokerSettingsError, MqttTransport, parse_broker_url
-from ..live.publish import PublishError, publish_recording_lines
+from ..live.publish import PublishError, publish_until_stopped
 from ..live.service import Service, status_topic
 from ..live.transport import TransportError
 from ..intake.hl7 import cli as hl7_cli
@@ -78,26 +82,9 @@ def setup_logging(level: str) -> None:
 
 # --------------------------------------------------------------------------- argument types
 
-def positive_float(text: str) -> float:
-    """An argparse type: a number above 0 (argparse names the option in its message)."""
-    try:
-        v = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a number above 0, got {text!r}") from None
-    if not v > 0 or v == float("inf"):
-        raise argparse.ArgumentTypeError(f"expected a number above 0, got {text!r}")
-    return v
-
-
-def non_negative_int(text: str) -> int:
-    try:
-        v = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a whole number 0 or more, got {text!r}"
-                                         ) from None
-    if v < 0:
-        raise argparse.ArgumentTypeError(f"expected a whole number 0 or more, got {text!r}")
-    return v
+#: a number above 0; a whole number 0 or more (the shared wording, :mod:`..core.argtypes`)
+positive_float = number_above(0)
+non_negative_int = whole_number(0)
 
 
 def duration(text: str) -> float:
@@ -160,6 +147,9 @@ def cmd_replay(args) -> int:
     if summary.duplicates:
         out.print(f"  {summary.duplicates} message(s) were already in the database (or came "
                   "twice) and were not stored again")
+    if summary.rejects_known:
+        out.print(f"  {summary.rejects_known} of the rejects were already in the database "
+                  "(from an earlier replay) and were not stored again")
     out.print(f"  see them with: hemostream query rejected --db {summary.db_url}"
               if summary.rejected_total else
               f"  see them with: hemostream query derived --db {summary.db_url}")
@@ -245,8 +235,9 @@ def cmd_run(args) -> int:
     except BrokerSettingsError as e:
         log.error("%s", e)
         return 2
-    log.info("broker %s as client %r (QoS 1, persistent session, acknowledged after "
-             "storing)", transport.address, cfg.broker.client_id)
+    log.info("connecting to the broker at %s as client %r (QoS 1, persistent session, "
+             "acknowledged after storing); Ctrl-C or SIGTERM stops the service",
+             transport.address, cfg.broker.client_id)
     svc = Service(cfg, transport)
     listen = args.hl7_listen or cfg.intake.hl7.listen
     if listen:
@@ -410,15 +401,16 @@ def publish_lines(lines, url: str, speed: float | None, give_up_s: float = 120.0
         err.print(f"[red]error:[/] --publish: {e}", highlight=False)
         return 2
     try:
-        s = asyncio.run(publish_recording_lines(lines, url, speed,
-                                                max_seconds_down=give_up_s))
+        s = publish_until_stopped(lines, url, speed, give_up_s=give_up_s,
+                                  say=lambda text: err.print(text, highlight=False))
     except PublishError as e:
         err.print(f"[red]error:[/] {e}; gave up: {e.summary.words()}", highlight=False)
         return 1
     except TransportError as e:
         err.print(f"[red]error:[/] {e}", highlight=False)
         return 1
-    except KeyboardInterrupt:
+    if s.stopped:
+        err.print(f"stopped publishing to {url}: {s.words()}", highlight=False)
         return 130
     err.print(f"published to {url}: {s.words()}", highlight=False)
     return 0
@@ -581,15 +573,7 @@ def build_parser() -> argparse.ArgumentParser:
 
 # --------------------------------------------------------------------------- validate
 
-def _cohort_size(text: str) -> int:
-    try:
-        n = int(text)
-    except ValueError:
-        n = 0
-    if n < 1:
-        raise argparse.ArgumentTypeError(f"expected a whole number of patients above 0, "
-                                         f"got {text!r}")
-    return n
+_cohort_size = whole_number(1, what="a whole number of patients")
 
 
 def add_validate_parser(sub) -> None:

@@ -1,5 +1,8 @@
 """The synchronous processing core: one message in, what happened out.
 
+Size: the one entry of the core (feed, drain, tick) with the checks of each message kind; to
+be split by message kind (issue 16).
+
 Every path (live MQTT, replay of a recording, the in-process demo) calls
 :meth:`Processor.feed` with the topic, the payload and the arrival time, and collects rows to
 store and messages to publish with :meth:`Processor.drain`. The core does no I/O and reads no

@@ -212,12 +212,11 @@ class Dashboard:
     def render(self):
         w, h = self.console.size
         now = self.clock()
-        if self.status is not None:
-            st = self.status()
-            self.screen = replace(self.screen, **{k: v for k, v in st.items()
-                                                  if k in ("connected", "rate", "lag_s",
-                                                           "source")})
-        scr = replace(self.screen, message=self.state.message)
+        st = self.status() if self.status is not None else {}
+        self.screen = replace(self.screen, **{k: v for k, v in st.items()
+                                              if k in ("connected", "rate", "lag_s", "source")})
+        # what the feed waits for (watch: the broker, the unit) unless a key result shows
+        scr = replace(self.screen, message=self.state.message or st.get("notice", ""))
         with self.lock:
             beds = self.view.sorted_beds()
             if self.state.detail and beds:

@@ -1,5 +1,8 @@
 """Drawing the unit view with rich: bed tiles, the unit alarm list, one bed's detail.
 
+Size: the header, tiles, alarm list and bed detail share the layout helpers; to be split by
+screen part (issue 16).
+
 Colours follow the IEC 60601-1-8 convention for alarm priority (high red, medium yellow,
 low cyan). A new (unacknowledged) alarm is drawn bold and blinking; an acknowledged one
 steady and dim, an audio-paused one with a "paused" mark; technical conditions are labelled

@@ -13,8 +13,9 @@ from __future__ import annotations
 import argparse
 import asyncio
 import json
-import sys
 import logging
+import signal
+import sys
 import time
 import uuid
 from dataclasses import dataclass
@@ -22,8 +23,9 @@ from typing import Any, Callable, Iterable, Iterator
 
 from ..config import load_config
 from ..core.config import BrokerConfig
-from ..core.wire import format_epoch, parse_time, parse_time_or_none
+from ..core.wire import parse_time_or_none
 from .mqtt import MqttTransport
+from .retime import Retimer, close_gaps, map_times  # noqa: F401  (their old home)
 from .service import backoff
 from .transport import TransportError
 
@@ -39,83 +41,6 @@ def as_record(line: Any) -> dict | None:
     except (ValueError, TypeError):
         return None
     return rec if isinstance(rec, dict) else None
-
-
-class Retimer:
-    """Moves a recording's times to the present.
-
-    Real time (``speed`` 1) shifts every time by one offset, so the first arrival becomes
-    ``start``. Faster than real time compresses the time line by ``speed`` around the first
-    arrival, so measurement times keep pace with a receiver that uses its wall clock.
-
-    >>> r = Retimer(start=1000.0, speed=2.0)
-    >>> r.time(50.0), r.time(60.0)
-    (1000.0, 1005.0)
-    """
-
-    def __init__(self, start: float, speed: float = 1.0) -> None:
-        self.start = start
-        self.speed = speed
-        self.t0: float | None = None
-
-    def time(self, t: float) -> float:
-        if self.t0 is None:
-            self.t0 = t
-        return self.start + (t - self.t0) / self.speed
-
-    def record(self, rec: dict) -> dict:
-        """A retimed copy of a recording line (see :func:`map_times`)."""
-        return map_times(rec, self.time)
-
-
-def map_times(rec: dict, fn: Callable[[float], float]) -> dict:
-    """A copy of a recording line with ``rx``, the payload's ``time`` and each observation's
-    own ``time`` passed through ``fn`` (epoch seconds). Broken payloads pass unchanged."""
-
-    def text(v: Any) -> Any:
-        if not isinstance(v, str):
-            return v
-        try:
-            return format_epoch(fn(parse_time(v)))
-        except ValueError:
-            return v
-
-    out = dict(rec)
-    if isinstance(rec.get("rx"), str):
-        out["rx"] = text(rec["rx"])
-    p = rec.get("payload")
-    if isinstance(p, dict):
-        p = dict(p)
-        if "time" in p:
-            p["time"] = text(p["time"])
-        if isinstance(p.get("obs"), list):
-            p["obs"] = [dict(o, time=text(o["time"])) if isinstance(o, dict) and "time" in o
-                        else o for o in p["obs"]]
-        out["payload"] = p
-    return out
-
-
-def close_gaps(recs: Iterable[dict], max_gap_s: float = 5.0,
-               keep_s: float = 1.0) -> Iterator[dict]:
-    """Shorten every silence longer than ``max_gap_s`` between arrivals to ``keep_s``, moving
-    all later times (arrival and measurement) back by the same amount, so a demo does not sit
-    idle through a recording's quiet stretches.
-
-    >>> recs = [{"rx": "2026-12-01T08:00:00Z"}, {"rx": "2026-12-01T08:05:00Z"}]
-    >>> [r["rx"] for r in close_gaps(recs)]
-    ['2026-12-01T08:00:00Z', '2026-12-01T08:00:01.000Z']
-    """
-    prev = None
-    shift = 0.0
-    for rec in recs:
-        rx = rec.get("rx")
-        if isinstance(rx, str):
-            t = parse_time_or_none(rx)
-            if t is not None:
-                if prev is not None and t - prev > max_gap_s:
-                    shift += t - prev - keep_s
-                prev = t
-        yield map_times(rec, lambda x, s=shift: x - s) if shift else rec
 
 
 def payload_bytes(payload: Any) -> bytes:
@@ -135,6 +60,8 @@ class PublishSummary:
     #: sent but never acknowledged by the broker when publishing ended (given up)
     unconfirmed: int = 0
     gave_up: bool = False
+    #: ended by ``stop`` (a signal) before the end of the recording
+    stopped: bool = False
 
     def words(self) -> str:
         """The counts in one sentence: what the broker acknowledged, what failed."""
@@ -142,11 +69,16 @@ class PublishSummary:
         return (f"{self.published} of {self.lines} messages acknowledged by the broker"
                 + (f", {failed} NOT delivered ({self.unconfirmed} sent without an "
                    "acknowledgement)" if failed else "")
-                + ("; the rest of the recording was not sent" if self.gave_up else "")
+                + ("; the rest of the recording was not sent" if self.gave_up or self.stopped
+                   else "")
                 + (f"; {self.resent} resent after {self.reconnects} reconnect(s)"
                    if self.resent or self.reconnects else "")
                 + (f"; {self.unreadable} unreadable line(s) skipped" if self.unreadable
                    else ""))
+
+
+class Stopped(TransportError):
+    """Publishing was stopped (a signal) before it had a connection."""
 
 
 class PublishError(TransportError):
@@ -163,13 +95,17 @@ async def publish_recording_lines(lines_iter: Iterable[Any], url: str, speed: fl
                                   sleep: Callable[[float], Any] = asyncio.sleep,
                                   window: int = 200, stop: asyncio.Event | None = None,
                                   client_id: str | None = None,
-                                  max_seconds_down: float = 120.0) -> PublishSummary:
+                                  max_seconds_down: float = 120.0,
+                                  on_wait: Callable[[str], None] | None = None
+                                  ) -> PublishSummary:
     """Publish every line to ``url`` at QoS 1 and wait until the broker confirmed them all.
 
     ``speed``: N x real time by the lines' ``rx``; None or 0 publishes as fast as the window
     of ``window`` unconfirmed messages allows (times are then moved so the recording ends
     now). ``broker`` supplies credentials and TLS files (the URL overrides its ``url``).
-    Gives up (TransportError) after ``max_seconds_down`` without a connection.
+    Gives up (TransportError) after ``max_seconds_down`` without a connection; while it has
+    none, ``on_wait`` is told what it waits for (once a failed attempt). A set ``stop`` ends
+    it at the next line, or during a wait for the broker.
     """
     base = broker or BrokerConfig()
     cfg = base.model_copy(update={"url": url, "client_id": client_id
@@ -189,7 +125,7 @@ async def publish_recording_lines(lines_iter: Iterable[Any], url: str, speed: fl
 
     recs: Iterable[dict] = readable(lines_iter)
     if retime and paced:
-        rt = Retimer(clock(), speed)
+        rt = Retimer(clock(), speed or 1.0)
         recs = (rt.record(r) for r in recs)
     elif retime:                    # as fast as possible: the recording ends now
         recs = list(recs)
@@ -216,6 +152,9 @@ async def publish_recording_lines(lines_iter: Iterable[Any], url: str, speed: fl
                 watcher.cancel()
                 watcher = None
                 await t.drop()
+            slow = (asyncio.get_running_loop().call_later(
+                1.0, on_wait, f"waiting for the broker at {url}: connecting, no answer yet")
+                if on_wait is not None else None)
             try:
                 await t.connect()
             except TransportError as e:
@@ -225,9 +164,23 @@ async def publish_recording_lines(lines_iter: Iterable[Any], url: str, speed: fl
                     down_since = time.monotonic()
                 if time.monotonic() - down_since > max_seconds_down:
                     raise
-                await asyncio.sleep(backoff(attempt, 0.2, 5.0))
+                if on_wait is not None:
+                    on_wait(f"waiting for the broker at {url}: not connected ({e}); giving "
+                            f"up after {max_seconds_down:g} s without a connection")
+                if stop is not None:
+                    try:
+                        await asyncio.wait_for(stop.wait(), backoff(attempt, 0.2, 5.0))
+                    except asyncio.TimeoutError:
+                        pass
+                    if stop.is_set():
+                        raise Stopped("stopped before a connection to the broker") from None
+                else:
+                    await asyncio.sleep(backoff(attempt, 0.2, 5.0))
                 attempt += 1
                 continue
+            finally:
+                if slow is not None:
+                    slow.cancel()
             if summary.reconnects or down_since is not None:
                 summary.reconnects += 1
             down_since, attempt = None, 0
@@ -264,17 +217,26 @@ async def publish_recording_lines(lines_iter: Iterable[Any], url: str, speed: fl
         rx0 = None
         for rec in recs:
             if stop is not None and stop.is_set():
+                summary.stopped = True
+                summary.lines -= 1          # taken from the recording, but not sent
                 break
             rx = parse_time_or_none(rec.get("rx")) if paced else None
             if rx is not None:      # a line without a valid arrival time goes out unpaced
                 if rx0 is None:
                     rx0 = rx
-                delay = (rx - rx0) / (1.0 if retime else speed) - (time.monotonic() - wall0)
+                pace = 1.0 if retime else speed or 1.0
+                delay = (rx - rx0) / pace - (time.monotonic() - wall0)
                 if delay > 0:
                     await sleep(delay)
             await wait_window(window - 1)
             send(rec["topic"], payload_bytes(rec["payload"]))
         await wait_window(0)
+    except (Stopped, asyncio.CancelledError):
+        if stop is None or not stop.is_set():
+            raise
+        prune()
+        summary.unconfirmed = len(unconfirmed)
+        summary.stopped = True
     except TransportError as e:
         prune()
         summary.unconfirmed = len(unconfirmed)
@@ -286,6 +248,49 @@ async def publish_recording_lines(lines_iter: Iterable[Any], url: str, speed: fl
         await t.disconnect()
         summary.seconds = time.monotonic() - t_start
     return summary
+
+
+def publish_until_stopped(lines: Iterable[Any], url: str, speed: float | None, *,
+                          give_up_s: float = 120.0, say: Callable[[str], None] = print,
+                          broker: BrokerConfig | None = None) -> PublishSummary:
+    """:func:`publish_recording_lines` for a command: Ctrl-C (SIGINT) and SIGTERM stop it
+    within about a second, even while it waits for a broker that does not answer (the
+    summary says ``stopped``); while there is no connection ``say`` is told what it waits for
+    (at the first failed attempt, then every 10 s).
+
+    Raises :class:`PublishError` when it gave up.
+    """
+    said: list[tuple[str, float]] = [("", 0.0)]       # the last words and when
+
+    def waiting(text: str) -> None:
+        now = time.monotonic()
+        if text != said[0][0] or now - said[0][1] >= 10.0:
+            say(text + "; Ctrl-C stops")
+            said[0] = (text, now)
+
+    async def main() -> PublishSummary:
+        loop = asyncio.get_running_loop()
+        stop = asyncio.Event()
+        me = asyncio.current_task()
+
+        def on_signal(name: str) -> None:
+            if not stop.is_set():
+                say(f"{name}: stopping (waiting at most a second for the broker's "
+                    "acknowledgements)")
+                stop.set()
+                if me is not None:      # a connection attempt may hang: cut it short
+                    loop.call_later(1.0, me.cancel)
+        for sig in (signal.SIGINT, signal.SIGTERM):
+            loop.add_signal_handler(sig, on_signal, sig.name)
+        try:
+            return await publish_recording_lines(lines, url, speed, broker=broker,
+                                                 max_seconds_down=give_up_s, stop=stop,
+                                                 on_wait=waiting)
+        finally:
+            for sig in (signal.SIGINT, signal.SIGTERM):
+                loop.remove_signal_handler(sig)
+
+    return asyncio.run(main())
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -1,5 +1,8 @@
 """The live pipeline: a transport (real broker or in-process) -> the core -> the database.
 
+Size: the service's one event loop with its stages (intake, queue, flush, publish, health);
+to be split by stage (issue 16).
+
 Flow and the at-least-once contract (MQTT 5.0 section 4.3.2, QoS 1):
 
     transport --Incoming--> bounded queue --> Processor.feed (event loop, single thread)

@@ -151,7 +151,8 @@ def add_parsers(sub) -> None:
                    help="count alarms acknowledged within MIN minutes (default 5)")
     c.add_argument("--detect-within", type=float, default=60.0, metavar="MIN",
                    help="an onset with no alarm within MIN minutes counts as missed "
-                   "(default 60)")
+                   "(default 60); one with less than MIN minutes of recording after it and "
+                   "no alarm is counted apart, as too late in the recording to judge")
     c.add_argument("--format", choices=("table", "json", "csv"), default="table",
                    help="what to print on stdout (default table)")
     c.add_argument("--json", metavar="FILE", help="also write the full result as JSON")

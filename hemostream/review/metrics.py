@@ -26,8 +26,10 @@ configuration:
 - **detection**: for each ``deterioration_onset`` note, the delay from the note to the first
   physiological alarm raised on that bed (and to the first at medium or high priority), up to
   the next onset on the bed, the end of the bed's span or ``detect_within_s``, whichever comes
-  first; no alarm in that window is a **missed** event. Alarms already active at the onset are
-  listed, since they may already have told staff.
+  first; no alarm in that window is a **missed** event, unless the recording of the bed ends
+  before ``detect_within_s`` has passed (and before the next onset): such an onset is counted
+  apart, **too late** in the recording to judge, since an alarm might still have come. Alarms
+  already active at the onset are listed, since they may already have told staff.
 
 These describe alarm behaviour on the given recording, not clinical validation.
 """
@@ -138,7 +140,9 @@ def burden(beds: dict[int, BedInfo], periods: list[AlarmPeriod],
                if o["bed_id"] == n["bed_id"] and float(o["time"]) > t0]
         if nxt:
             horizon = min(horizon, min(nxt))
+        cut_by_end = False
         if b is not None and b.end is not None:
+            cut_by_end = b.end < horizon
             horizon = min(horizon, max(b.end, t0))
         phys = [p for p in by_bed.get(n["bed_id"], []) if p.category == "physiological"]
         active = sorted({p.rule for p in phys
@@ -158,6 +162,8 @@ def burden(beds: dict[int, BedInfo], periods: list[AlarmPeriod],
             "text": n.get("text") or n.get("param") or "",
             "window_s": round(horizon - t0, 1),
             "detected": first is not None,
+            # no alarm, but the recording ended before the window did: not judged
+            "too_late": first is None and cut_by_end,
             "delay_s": round(first.start - t0, 1) if first is not None else None,
             "rule": first.rule if first is not None else None,
             "priority": first.raised_priority if first is not None else None,
@@ -169,7 +175,8 @@ def burden(beds: dict[int, BedInfo], periods: list[AlarmPeriod],
     detection = {
         "events": events,
         "detected": len(detected),
-        "missed": len(events) - len(detected),
+        "missed": sum(1 for e in events if not e["detected"] and not e["too_late"]),
+        "too_late": sum(1 for e in events if e["too_late"]),
         "median_delay_s": round(statistics.median(detected), 1) if detected else None,
         "max_delay_s": max(detected) if detected else None,
         "within_s": detect_within_s,

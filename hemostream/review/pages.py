@@ -29,7 +29,7 @@ from .limits import LimitsSource, limit_lines
 from .panels import PANEL_KEYS, PANELS, panel_data
 from .periods import PRIORITIES, time_in_state
 from .queries import BedData, BedInfo
-from .text import hhmmss, span_text, when
+from .text import fluid_remarks, hhmmss, span_text, when
 from ..core.rules.phrases import phrase
 
 
@@ -234,10 +234,13 @@ def bed_page(bd: BedData, lim: LimitsSource, t0: float, t1: float, end: float, *
                           else "-"),
                          (f"{d['cvp_change']:+.1f}" if d.get("cvp_change") is not None
                           else "-"),
-                         escape(str(d.get("outcome", "")).replace("_", " ")),
-                         escape(d.get("reason", ""))])
+                         escape(str(d.get("outcome", "")).replace("_", " ")
+                                + (" (qualified)" if fluid_remarks(e, bd.periods) else "")),
+                         escape("; ".join(x for x in [d.get("reason", ""),
+                                                      *fluid_remarks(e, bd.periods)] if x))])
         parts.append(_table(["bolus", "volume", "measured by", "baseline", "after", "change",
-                             "CVP change (mm[Hg])", "result", "reason"], rows, {3, 4, 5, 6}))
+                             "CVP change (mm[Hg])", "result", "reason or remarks"], rows,
+                            {3, 4, 5, 6}))
         parts.append('<p class="small">Responsive when the value rose by at least the '
                      "configured threshold (10 % by default): a rise in SV or CO of 10-15 % "
                      "after 250-500 mL marks a preload-responsive patient (Monnet, Marik, "

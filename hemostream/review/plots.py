@@ -1,6 +1,9 @@
 """Figures of one bed over a time window (matplotlib, Agg): the alarm time line and one value
 panel per group of parameters, all on the same time axis.
 
+Size: the alarm time line and the value panels share the axes, shading and note drawing;
+being extended now (signal-quality shading), split after that lands.
+
 Every figure has the same width and the same left and right margins, so their time axes line
 up when stacked on a page. Artists a reader may want to hover (alarm spans, notes,
 fluid-challenge results) get an SVG id (``gid``) and a hover text; :func:`.svg.svg_of` turns the
@@ -33,7 +36,8 @@ from .limits import LimitLine  # noqa: E402
 from .panels import PanelData  # noqa: E402
 from .periods import AlarmPeriod, InfoEvent, state_segments  # noqa: E402
 from .svg import Figures, finish  # noqa: E402
-from .text import alarm_hover, fluid_text, hhmmss, note_hover, span_text, when  # noqa: E402
+from .text import (alarm_hover, fluid_remarks, fluid_text, hhmmss, note_hover,  # noqa: E402
+                   span_text, when)
 from ..core.rules.phrases import phrase  # noqa: E402
 
 matplotlib.rcParams.update({
@@ -357,14 +361,17 @@ def panel_figure(pd: PanelData, periods: list[AlarmPeriod], notes: list[dict[str
         if not t0 <= e.time <= t1:
             continue
         gid = f"fluid-result-{k}"
-        ax.annotate(fluid_text(e), xy=(x_of(e.time), y1), xytext=(0, -2),
-                    textcoords="offset points", ha="right", va="top", fontsize=7.5,
+        remarks = fluid_remarks(e, periods)
+        # the box grows away from the nearer edge of the plot: never over the legend
+        ax.annotate(fluid_text(e) + (" (qualified)" if remarks else ""),
+                    xy=(x_of(e.time), y1), xytext=(0, -2), textcoords="offset points",
+                    ha=_label_side(e.time, t0, t1), va="top", fontsize=7.5,
                     bbox={"boxstyle": "round,pad=0.25", "fc": "white", "ec": "#777777",
                           "lw": 0.6}, zorder=5, gid=gid)
         d = e.details
-        hover[gid] = (f"fluid challenge at {when(e.time)}: {fluid_text(e)}\nbolus "
-                      f"{d.get('volume_ml') or 0:g} mL at {when(d['bolus_time'])}"
-                      if d.get("bolus_time") else fluid_text(e))
+        hover[gid] = "\n".join([f"fluid challenge at {when(e.time)}: {fluid_text(e)}\nbolus "
+                                f"{d.get('volume_ml') or 0:g} mL at {when(d['bolus_time'])}"
+                                if d.get("bolus_time") else fluid_text(e), *remarks])
     for pri in ("high", "medium", "low"):
         if pri in used:
             handles.append(Patch(color=PRIORITY_COLORS[pri], alpha=0.35,
@@ -375,6 +382,12 @@ def panel_figure(pd: PanelData, periods: list[AlarmPeriod], notes: list[dict[str
     ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(1.01, 1.0), fontsize=7.5,
               frameon=False, borderaxespad=0.0)
     return finish(fig, pd.key, hover, spans, n_notes, png)
+
+
+def _label_side(t: float, t0: float, t1: float) -> str:
+    """``ha`` for a label at ``t``: it runs rightwards in the left part of the plot and
+    leftwards in the rest, so it stays inside the axes (the legend sits right of them)."""
+    return "left" if t1 > t0 and (t - t0) / (t1 - t0) < 0.3 else "right"
 
 
 def timeline_figure(periods: list[AlarmPeriod], info: list[InfoEvent],
@@ -427,14 +440,18 @@ def timeline_figure(periods: list[AlarmPeriod], info: list[InfoEvent],
         k += 1
         gid = f"info-{k}"
         if e.rule == "fluid_challenge":
-            label = fluid_text(e)
-            short = "fluid: " + str(e.details.get("outcome", "")).replace("_", " ")
+            remarks = fluid_remarks(e, periods)
+            label = "\n".join([fluid_text(e), *remarks])
+            short = ("fluid: " + str(e.details.get("outcome", "")).replace("_", " ")
+                     + (" (qualified)" if remarks else ""))
         else:
             label = e.details.get("text") or "profile read-out: none"
             short = "profile: " + str(e.details.get("profile") or "none").replace("_", " ")
         ax.plot([x_of(e.time)], [1], marker="s", ms=4, color="#2f3f5f", zorder=5, gid=gid)
-        ax.annotate(short, (x_of(e.time), 1), xytext=(3, 3 if k % 2 else -8),
-                    textcoords="offset points", fontsize=6.5, color="#2f3f5f")
+        side = _label_side(e.time, t0, t1)
+        ax.annotate(short, (x_of(e.time), 1), xytext=(3 if side == "left" else -3,
+                                                       3 if k % 2 else -8),
+                    textcoords="offset points", fontsize=6.5, color="#2f3f5f", ha=side)
         hover[gid] = f"{e.rule} {e.transition} at {when(e.time)}\n{label}"
     handles = [Patch(facecolor=PRIORITY_COLORS[q], edgecolor="#333333", lw=0.4,
                      label=f"{q} priority") for q in ("high", "medium", "low")]

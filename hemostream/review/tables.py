@@ -92,6 +92,10 @@ def table_rows(result: dict[str, Any]) -> list[tuple[str, str, list[Any]]]:
         add("detection", "marked deteriorations", lambda m: len(m["detection"]["events"]))
         add("detection", "detected", lambda m: m["detection"]["detected"])
         add("detection", "missed", lambda m: m["detection"]["missed"])
+        if any(m["detection"].get("too_late") for m in cfgs):
+            mins = cfgs[0]["detection"]["within_s"] / 60.0
+            add("detection", f"too late in the recording to judge (< {mins:g} min left)",
+                lambda m: m["detection"].get("too_late", 0))
         add("detection", "median delay (s)", lambda m: m["detection"]["median_delay_s"])
         add("detection", "longest delay (s)", lambda m: m["detection"]["max_delay_s"])
         for i, e in enumerate(det):
@@ -115,6 +119,8 @@ def _event_name(e: dict, width: int | None = None) -> str:
 def _delay_text(e: dict) -> Any:
     if e["detected"]:
         return e["delay_s"]
+    if e.get("too_late"):
+        return f"too late to judge (no alarm, {e['window_s'] / 60:.0f} min left)"
     return "missed" + (f" (active before: {', '.join(e['active_at_onset'])})"
                        if e["active_at_onset"] else "")
 

@@ -5,9 +5,10 @@ from __future__ import annotations
 from datetime import datetime, timezone
 from typing import Any
 
+from ..core.display import fmt_value
 from ..core.processor import epoch
 from ..core.rules.phrases import phrase
-from .periods import AlarmPeriod, InfoEvent
+from .periods import RANK, AlarmPeriod, InfoEvent
 
 
 def parse_time(text: str, option: str = "time") -> float:
@@ -79,3 +80,58 @@ def fluid_text(e: InfoEvent) -> str:
             s += f", CVP {d['cvp_change']:+.1f}"
         return s
     return f"not evaluable: {d.get('reason', '')}"
+
+
+#: a resting adult's usual range (handbook ranges, from memory: SV about 60-100 mL, CO about
+#: 4-8 L/min); a baseline under this part of the low end makes a percentage change large
+#: for a small absolute one
+LOW_BASELINE = {"SV": 40.0, "CO": 2.5}
+#: responders to 250-500 mL typically rise by 10-30 % (common practice, from memory); a
+#: rise beyond this is more than a bolus alone usually explains
+LARGE_CHANGE_PCT = 100.0
+
+
+def fluid_remarks(e: InfoEvent, periods: list[AlarmPeriod]) -> list[str]:
+    """What qualifies a fluid-challenge result: a very low baseline, a change larger than a
+    bolus alone explains, a window cut short, or physiological alarms at medium or high
+    priority during the evaluation (bleeding, an unstable bed: the change may owe to the
+    bed's course, not the fluid)."""
+    d = e.details
+    out: list[str] = []
+    if d.get("outcome") not in ("responsive", "not_responsive"):
+        return out
+    param, base, change = d.get("param"), d.get("baseline"), d.get("change_pct")
+    if isinstance(base, int | float) and param in LOW_BASELINE and base < LOW_BASELINE[param]:
+        unit = "mL" if param == "SV" else "L/min"
+        out.append(f"baseline {param} {fmt_value(param, base)} {unit} was very low: a small "
+                   "rise is a large percentage")
+    if isinstance(change, int | float) and abs(change) > LARGE_CHANGE_PCT:
+        out.append(f"a change of {change:+.0f} % is more than a bolus alone usually explains")
+    if d.get("note"):
+        out.append(str(d["note"]))
+    t0, t1 = d.get("bolus_time"), d.get("window_end") or e.time
+    if isinstance(t0, int | float):
+        unstable = sorted({phrase(p.rule) for p in periods
+                           if p.category == "physiological" and _active_s(p, t0, t1) > 0})
+        if unstable:
+            out.append("alarms during the evaluation (" + ", ".join(unstable) + "): the "
+                       "change may owe to the bed's course (bleeding, drugs), not the fluid "
+                       "alone")
+    return out
+
+
+def _active_s(p: AlarmPeriod, t0: float, t1: float) -> float:
+    """Seconds in [t0, t1] during which ``p``'s condition was present at medium or high
+    priority (a latched alarm whose condition was over does not count)."""
+    total = 0.0
+    for a, b, pri in p.segments(t1):
+        if RANK[pri] < RANK["medium"]:
+            continue
+        lo, hi = max(a, t0), min(b, t1)
+        if hi <= lo:
+            continue
+        total += hi - lo
+        for la, lb in p.latched_spans(t1):
+            total -= max(0.0, min(hi, lb) - max(lo, la))
+    return total
+

@@ -120,7 +120,7 @@ def _bodies(conn: Connection, rows: list[dict[str, Any]], names: dict[int, str]
     if obs_rows:
         items: dict[int, list[dict[str, Any]]] = {}
         t0 = min(r["time"] for r in obs_rows.values()) - 86400.0
-        for t, mid, _bed, param, _v, _u, status, raw_v, raw_u, _late, *_q in iter_observations(
+        for t, mid, _bed, param, _v, _u, status, raw_v, raw_u, _late, _q in iter_observations(
                 conn, list(names), t0=t0):
             m = obs_rows.get(mid)
             if m is None:

@@ -74,7 +74,8 @@ def replay_command(path: str | Path, db_url: str | None, config_path: str | None
 
 def _paced(lines: Iterable[dict[str, Any]], speed: float) -> Iterator[dict[str, Any]]:
     """Lines at ``speed`` x real time by their ``rx`` (arrival) times."""
-    first = wall0 = None
+    first: float | None = None
+    wall0 = 0.0
     for line in lines:
         rx = datetime.fromisoformat(line["rx"].replace("Z", "+00:00")).timestamp()
         if first is None:

@@ -106,10 +106,10 @@ class MllpServer:
 
     async def start(self, host: str, port: int) -> tuple[str, int]:
         """Bind and listen; returns the bound (host, port) (port 0 picks a free one)."""
-        self.server = await start_hl7_server(self._client, host, port,
-                                             limit=self.cfg.max_message_bytes + 8,
-                                             ssl=self.ssl)
-        sock = self.server.sockets[0].getsockname()
+        server = await start_hl7_server(self._client, host, port,
+                                        limit=self.cfg.max_message_bytes + 8, ssl=self.ssl)
+        self.server = server
+        sock = server.sockets[0].getsockname()
         return sock[0], sock[1]
 
     async def close(self) -> None:
@@ -251,6 +251,7 @@ class Hl7Intake:
                 self.publish(topic, payload, retain)
         rows = rows_of(out)
         loop = self._loop
+        assert loop is not None               # set when the intake started
 
         def done() -> None:          # writer thread, after COMMIT
             loop.call_soon_threadsafe(_resolve, waiting)
@@ -381,6 +382,7 @@ async def send_messages(host: str, port: int, messages: Any, *,
             try:
                 if writer is None:
                     reader, writer = await open_hl7_connection(host, port, ssl=ssl)
+                assert reader is not None
                 writer.writeblock(text.encode("utf-8"))
                 await writer.drain()
                 ack = await asyncio.wait_for(reader.readblock(), ack_timeout_s)

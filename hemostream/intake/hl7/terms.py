@@ -63,6 +63,7 @@ class Terms:
                 return None, f"{code}^{ref_id}"
             if by_code is None or by_ref is None or by_code.code != by_ref.code:
                 known = by_ref or by_code
+                assert known is not None          # not both None: checked above
                 return None, (f"{code}^{ref_id} (code and reference id disagree; the table "
                               f"has {known.code}^{known.ref_id})")
             return by_ref, ""
