@@ -133,7 +133,11 @@ def run_kill_test(tmp_path: Path, broker_url: str, protocol: str) -> dict:
         for i in range(3):
             workers.append(Worker(conf, tmp_path / f"w{i + 1}.log"))
         logs = lambda: "\n".join(w.log.read_text(errors="replace")[-3000:] for w in workers)  # noqa: E731
-        wait_until(lambda: len(owners(db)) == 12, 60, f"12 units claimed\n{logs()}")
+        # every worker holds its share before the stream starts (a worker that started
+        # slower than the others takes its share from them a check or two later)
+        wait_until(lambda: len(owners(db)) == 12
+                   and sorted(Counter(owners(db).values()).values()) == [4, 4, 4], 60,
+                   f"12 units claimed, 4 by each worker\n{owners(db)}\n{logs()}")
         # the units' services subscribe once claimed: their sessions must exist before the
         # publisher starts (what is published before a subscription exists is not kept)
         wait_until(lambda: sum(w.log.read_text(errors="replace").count(
@@ -152,7 +156,7 @@ def run_kill_test(tmp_path: Path, broker_url: str, protocol: str) -> dict:
         time.sleep(4.0)
         victim = workers[0]
         held = {u for u, o in owners(db).items() if o == victim.owner_name()}
-        assert held, "the first worker held no unit"
+        assert held, f"the first worker held no unit: {owners(db)}\n{logs()}"
         victim.proc.send_signal(signal.SIGKILL)
         killed = time.monotonic()
         victim.proc.wait(10)
@@ -214,7 +218,9 @@ def check(result: dict) -> None:
     assert result["dup_raises"] == [], result["dup_raises"][:5]
     # every unit raised alarms (HR above 140 for 3 s every 6 s), its owner changing or not
     assert set(result["raises"]) == set(UNITS)
-    assert result["moved_s"] <= LEASE_S + 2 * CHECK_S + 2.0, result["moved_s"]
+    # the lease runs out, then the next check of a live worker (and of its count of live
+    # workers) claims: lease + two checks, plus slack for a loaded 2-core machine
+    assert result["moved_s"] <= LEASE_S + 2 * CHECK_S + 4.0, result["moved_s"]
     st = result["status"]
     held = Counter(r["owner"] for r in st["leases"] if r["live"])
     assert sorted(held.values()) == [4, 4, 4] and set(held) == set(result["live"]), held

@@ -113,11 +113,38 @@ def write_rows(engine: Engine, rows: dict[str, list[Any]],
             conn.exec_driver_sql(sql, params)
 
 
+def _partitions_first(engine: Engine, rows: dict[str, list[Any]]) -> None:
+    """Make the day partitions this batch's chunks need (and the next days') in a short
+    transaction of their own, before the write transaction: creating a partition locks the
+    partitioned table, and a writer that did it inside its write transaction (holding row
+    locks on its lease and the parent) could deadlock with another unit's writer doing the
+    same, and hold its lease's row long enough for the lease to run out."""
+    from .pg import known
+
+    ts: list[float] = []
+    for name in ("observations", "derived"):
+        batch = rows.get(name) or []
+        if not batch:
+            continue
+        if isinstance(batch[0], tuple):
+            k = TUPLE_COLUMNS[name].index("time")
+            vals = [r[k] for r in batch]
+        else:
+            vals = [r["time"] for r in batch]
+        vals = [float(v) for v in vals if v is not None]
+        if vals:
+            ts += [min(vals), max(vals)]
+    if ts:
+        with engine.begin() as conn:
+            known(engine).ensure(conn, ts)
+
+
 def _write_rows_copy(engine: Engine, rows: dict[str, list[Any]],
                      guard: Callable[[Any], None] | None = None) -> None:
     """PostgreSQL: each table's batch as one ``COPY ... FROM STDIN`` (:mod:`.pg`)."""
     from .pg import copy_rows
 
+    _partitions_first(engine, rows)
     with engine.begin() as conn:
         if guard is not None:       # e.g. a lease check (raises Fenced): same transaction
             guard(conn)
