@@ -7,11 +7,9 @@ CI makes sure the server runs; when it does not, these tests fail rather than sk
 
 import datetime as dt
 import json
-import os
-import uuid
 
 import pytest
-from sqlalchemy import create_engine, insert, select, text
+from sqlalchemy import create_engine, insert, select
 
 from hemostream import query
 from hemostream.core.config import Config
@@ -20,23 +18,10 @@ from hemostream.replay import replay_file
 from hemostream.store import TABLES, Base, message_count, open_engine, pg, versions
 from hemostream.store.retention import prune, stats
 
-PG = os.environ.get("HEMOSTREAM_TEST_PG", "postgresql+psycopg://127.0.0.1:5432/test")
 pytestmark = pytest.mark.postgres
 
 #: 2026-11-30 23:50 UTC (stdlib calendar): a recording that crosses midnight
 T0 = dt.datetime(2026, 11, 30, 23, 50, tzinfo=dt.timezone.utc).timestamp()
-
-
-@pytest.fixture
-def pg_url():
-    schema = f"hs_part_{uuid.uuid4().hex[:8]}"
-    admin = create_engine(PG)
-    with admin.begin() as c:
-        c.execute(text(f"CREATE SCHEMA {schema}"))
-    yield f"{PG}?options=-csearch_path%3D{schema}"
-    with admin.begin() as c:
-        c.execute(text(f"DROP SCHEMA {schema} CASCADE"))
-    admin.dispose()
 
 
 def _line(s, bed="bed-01"):

@@ -3,31 +3,15 @@
 CI makes sure the server runs; when it does not, this test fails rather than skips.
 """
 
-import os
-import uuid
-
 import pytest
-from sqlalchemy import create_engine, select, text
+from sqlalchemy import select
 
 from hemostream import query
 from hemostream.replay import replay_file
 from hemostream.store import TABLES, open_engine
 
-PG = os.environ.get("HEMOSTREAM_TEST_PG", "postgresql+psycopg://127.0.0.1:5432/test")
 
 pytestmark = pytest.mark.postgres
-
-
-@pytest.fixture
-def pg_url():
-    schema = f"hs_test_{uuid.uuid4().hex[:8]}"
-    admin = create_engine(PG)
-    with admin.begin() as c:
-        c.execute(text(f"CREATE SCHEMA {schema}"))
-    yield f"{PG}?options=-csearch_path%3D{schema}"
-    with admin.begin() as c:
-        c.execute(text(f"DROP SCHEMA {schema} CASCADE"))
-    admin.dispose()
 
 
 def test_replay_into_postgresql_matches_sqlite(handmade, pg_url, db_url):
