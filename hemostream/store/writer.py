@@ -73,13 +73,16 @@ def write_rows(engine: Engine, rows: dict[str, list[Any]],
                guard: Callable[[Any], None] | None = None) -> None:
     """Insert rows of several tables in one transaction (foreign-key order).
 
-    The hot path: each table's batch goes to the driver's ``executemany`` as one statement
-    compiled by SQLAlchemy for the dialect (no per-row ORM or type-processing work; the
-    values are already plain floats, ints, strings, booleans and bytes).
+    The hot path: each table's batch goes to the driver as one statement - ``executemany``
+    compiled by SQLAlchemy for the dialect, or on PostgreSQL one ``COPY ... FROM STDIN``
+    (:mod:`.pg`) - with no per-row ORM or type-processing work (the values are already
+    plain floats, ints, strings, booleans and bytes).
     """
     if engine.dialect.name == "postgresql":
-        return _write_rows_copy(engine, rows, guard)
-    positional = engine.dialect.positional
+        _partitions_first(engine, rows)
+        put = _copy_batch
+    else:
+        put = _executemany_batch
     with engine.begin() as conn:
         if guard is not None:       # e.g. a lease check (raises Fenced): same transaction
             guard(conn)
@@ -90,27 +93,42 @@ def write_rows(engine: Engine, rows: dict[str, list[Any]],
                                           rows.get("derived") or [])
                 continue
             batch = rows.get(name)
-            if not batch:
-                continue
-            if isinstance(batch[0], tuple):        # rows given in a fixed column order
-                cols = TUPLE_COLUMNS[name]
-                sql, order = _insert_sql(engine, name, cols)
-                if positional and order == cols:
-                    params = batch
-                else:
-                    params = [dict(zip(cols, r)) for r in batch]
-                    if positional:
-                        get = itemgetter(*order)
-                        params = list(map(get, params))
-                conn.exec_driver_sql(sql, params)
-                continue
-            sql, order = _insert_sql(engine, name, tuple(sorted(batch[0])))
+            if batch:
+                put(engine, conn, name, batch)
+
+
+def _executemany_batch(engine: Engine, conn: Any, name: str, batch: list[Any]) -> None:
+    positional = engine.dialect.positional
+    if isinstance(batch[0], tuple):        # rows given in a fixed column order
+        cols = TUPLE_COLUMNS[name]
+        sql, order = _insert_sql(engine, name, cols)
+        if positional and order == cols:
+            params = batch
+        else:
+            params = [dict(zip(cols, r)) for r in batch]
             if positional:
                 get = itemgetter(*order)
-                params = [(get(r),) for r in batch] if len(order) == 1 else list(map(get, batch))
-            else:
-                params = list(batch)
-            conn.exec_driver_sql(sql, params)
+                params = list(map(get, params))
+        conn.exec_driver_sql(sql, params)
+        return
+    sql, order = _insert_sql(engine, name, tuple(sorted(batch[0])))
+    if positional:
+        get = itemgetter(*order)
+        params = [(get(r),) for r in batch] if len(order) == 1 else list(map(get, batch))
+    else:
+        params = list(batch)
+    conn.exec_driver_sql(sql, params)
+
+
+def _copy_batch(engine: Engine, conn: Any, name: str, batch: list[Any]) -> None:
+    from .pg import copy_rows
+
+    if isinstance(batch[0], tuple):
+        copy_rows(conn, name, TUPLE_COLUMNS[name], batch)
+        return
+    cols = tuple(batch[0])
+    copy_rows(conn, name, cols, map(itemgetter(*cols), batch) if len(cols) > 1
+              else ((r[cols[0]],) for r in batch))
 
 
 def _partitions_first(engine: Engine, rows: dict[str, list[Any]]) -> None:
@@ -137,32 +155,6 @@ def _partitions_first(engine: Engine, rows: dict[str, list[Any]]) -> None:
     if ts:
         with engine.begin() as conn:
             known(engine).ensure(conn, ts)
-
-
-def _write_rows_copy(engine: Engine, rows: dict[str, list[Any]],
-                     guard: Callable[[Any], None] | None = None) -> None:
-    """PostgreSQL: each table's batch as one ``COPY ... FROM STDIN`` (:mod:`.pg`)."""
-    from .pg import copy_rows
-
-    _partitions_first(engine, rows)
-    with engine.begin() as conn:
-        if guard is not None:       # e.g. a lease check (raises Fenced): same transaction
-            guard(conn)
-        for name in INSERT_ORDER:
-            if name in CHUNKED:
-                if name == "observations" and (rows.get("observations") or rows.get("derived")):
-                    chunker(engine).write(conn, rows.get("observations") or [],
-                                          rows.get("derived") or [])
-                continue
-            batch = rows.get(name)
-            if not batch:
-                continue
-            if isinstance(batch[0], tuple):
-                copy_rows(conn, name, TUPLE_COLUMNS[name], batch)
-                continue
-            cols = tuple(batch[0])
-            copy_rows(conn, name, cols, map(itemgetter(*cols), batch) if len(cols) > 1
-                      else ((r[cols[0]],) for r in batch))
 
 
 #: how the writer waits out a database that is busy or away: first pause, longest pause
