@@ -105,6 +105,10 @@ class StoreConfig(BaseModel):
     #: observation messages; before that, at most ``chunk_segments`` open segments
     chunk_messages: Annotated[int, Field(gt=0)] = 900
     chunk_segments: Annotated[int, Field(gt=1)] = 128
+    #: each write batch is staged as one row of every bed's values; the staged rows are
+    #: split into per-bed segments every ``stage_messages`` messages or ``stage_s`` seconds
+    stage_messages: Annotated[int, Field(gt=0)] = 20000
+    stage_s: Annotated[float, Field(gt=0)] = 60.0
     retention: RetentionConfig = Field(default_factory=RetentionConfig)
     #: derived values are recomputable from the stored observations, so each (bed, value)
     #: is stored when it first appears, when it moved by more than `derived_deadband`
