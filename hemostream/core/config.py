@@ -181,6 +181,10 @@ class BrokerConfig(BaseModel):
     #: outgoing QoS 1 messages in flight / queued in the client
     outgoing_inflight: Annotated[int, Field(ge=1)] = 100
     outgoing_queue: Annotated[int, Field(ge=0)] = 20000
+    #: QoS of the ``derived`` publications: 0 (default; a live stream, one per input
+    #: message, recomputable from the stored observations: no PUBACK to wait for and handle)
+    #: or 1. Alarm state, alarm events and status are always QoS 1.
+    derived_qos: Literal[0, 1] = 0
 
 
 class WorkersConfig(BaseModel):
