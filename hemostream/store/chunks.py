@@ -13,6 +13,7 @@ Writing lives here (staging, splitting, sealing); reading in :mod:`.reading`.
 from __future__ import annotations
 
 import json
+import threading
 import time as _time
 from typing import Any, Sequence
 
@@ -244,20 +245,33 @@ class Chunker:
         self.staged: int | None = None            # messages in obs_staging (as far as known)
         self.staged_since: float | None = None    # monotonic time the oldest was staged
         self.to_seal: dict[int, bool] = {}        # bed_id -> final, in the order queued
+        #: where derived sequence numbers come from: this chunker, or the engine's one that
+        #: several writers of a process share (under its lock)
+        self.seq_source: Chunker = self
+        self._seq_lock = threading.Lock()
+
+    def take_seq(self, conn: Connection, n: int) -> int:
+        """The first of ``n`` new derived-value sequence numbers."""
+        src = self.seq_source
+        with src._seq_lock:
+            if src.next_seq is None:
+                t, st = TABLES["obs_chunks"], TABLES["obs_staging"]
+                src.next_seq = max(
+                    conn.execute(select(func.max(t.c.seq_max))).scalar() or 0,
+                    conn.execute(select(func.max(st.c.seq_max))).scalar() or 0) + 1
+            first = src.next_seq
+            src.next_seq += n
+        return first
 
     def write(self, conn: Connection, obs: list[Any], der: list[Any]) -> None:
-        t, st = TABLES["obs_chunks"], TABLES["obs_staging"]
-        if self.next_seq is None:
-            self.next_seq = max(conn.execute(select(func.max(t.c.seq_max))).scalar() or 0,
-                                conn.execute(select(func.max(st.c.seq_max))).scalar() or 0) + 1
+        st = TABLES["obs_staging"]
         if self.staged is None:
             self.staged = int(conn.execute(
                 select(func.coalesce(func.sum(st.c.n_messages), 0))).scalar() or 0)
             if self.staged:
                 self.staged_since = _time.monotonic()
         if obs or der:
-            blk = block_of(obs, der, self.next_seq, beds=True)
-            self.next_seq += len(der)
+            blk = block_of(obs, der, self.take_seq(conn, len(der)), beds=True)
             row = staging_row(blk)
             conn.execute(insert(st), [row])
             self.staged += max(row["n_messages"], 1)
