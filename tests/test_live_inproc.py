@@ -241,3 +241,52 @@ def test_demo_command_runs_without_a_broker_and_says_where_the_data_is(tmp_path)
     from hemostream.store import derived_rows
     assert len(derived_rows(db)) > 0
     assert repeated_identities(db) == []
+
+
+@pytest.mark.parametrize("high_s, raises", [(6, False), (16, True)])
+def test_a_backlog_is_ticked_in_arrival_time_not_on_the_wall_clock(tmp_path, monkeypatch,
+                                                                   high_s, raises):
+    """Behind the stream, the once-a-second tick uses the arrival time of the newest message
+    processed: an HR excursion shorter than its 10 s delay (IEC 60601-1-8 alarm condition
+    delay, the shipped default) whose end is still queued must not raise, though the wall
+    clock is already past the delay, and the feed is not silent; one longer than the delay
+    raises. (On the wall clock the short one raised, and so did device_silent.)"""
+    from hemostream.core.wire import format_epoch
+    from hemostream.live import service as svc_mod
+    from hemostream.live.transport import Incoming
+
+    t0 = 1_796_112_000.0
+    db = f"sqlite:///{tmp_path / 'b.db'}"
+    cfg = _cfg(db, beds=1)
+    assert cfg.rules.limits["HR"].delay_s == 10.0
+    clock = {"now": t0 + 60.0}                     # 60 s behind the stream
+
+    async def main():
+        broker = InprocBroker()
+        svc = Service(cfg, InprocTransport(broker, "hs-backlog"), db_url=db,
+                      clock=lambda: clock["now"], log_health=False)
+        svc._loop = asyncio.get_running_loop()
+        engine = open_engine(db)
+        await svc.prepare(engine)
+        svc.inq = asyncio.Queue()
+        for k in range(20):                        # HR 160 for 6 s, then 80
+            hr = 160 if k < high_s else 80
+            body = {"v": 1, "device": "gw-1", "seq": k, "time": format_epoch(t0 + k),
+                    "obs": [{"param": "HR", "value": hr, "unit": "/min"}]}
+            svc.inq.put_nowait(Incoming("hemo/SDU9/bed-01/obs", json.dumps(body).encode(),
+                                        1, k + 1, 0, t0 + k + 0.05))
+        svc.inq.put_nowait(svc_mod._STOP)
+        ticks = iter(range(10_000))                # each look at the monotonic clock: 2 s on
+        monkeypatch.setattr(svc_mod.time, "monotonic", lambda: 2.0 * next(ticks))
+        await svc._process_loop()
+        monkeypatch.undo()
+        svc.writer.close()
+        engine.dispose()
+        return svc
+
+    asyncio.run(main())
+    events = query(db, "SELECT rule, transition, time FROM alarm_events")
+    hr = [e[:2] for e in events if e[0].startswith("HR") and e[1] == "raised"]
+    assert hr == ([("HR_high", "raised")] if raises else []), events
+    # silent only by the clock at the stop (41 s after the last arrival), never before
+    assert all(e[2] == t0 + 60.0 for e in events if e[0] == "device_silent"), events

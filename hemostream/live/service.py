@@ -464,6 +464,8 @@ class Service:
         mono = time.monotonic
         next_flush = mono() + flush_every
         next_tick = mono() + 1.0
+        last_rx: float | None = None        # arrival time of the newest message processed
+        ticked = float("-inf")
         while True:
             item = await self.inq.get()
             if item is _STOP:
@@ -473,10 +475,19 @@ class Service:
                     item.result = item.feed(proc, item.rx)
                 else:
                     proc.feed(item.topic, item.payload, item.rx, retained=item.retain)
+                last_rx = item.rx
                 batch.append(item)
             now = mono()
             if now >= next_tick:
-                proc.tick(self.clock())
+                # behind the stream (messages still queued), time is where the processing
+                # is, as in a replay: a wall-clock tick would settle delays on state that is
+                # seconds old (an excursion shorter than its delay, whose end is still
+                # queued, would raise). Caught up, it is the clock (silent feeds).
+                t = self.clock()
+                if last_rx is not None and not self.inq.empty():
+                    t = max(min(t, last_rx), ticked)
+                proc.tick(t)
+                ticked = t
                 next_tick = now + 1.0
             out = proc.out
             if (len(batch) >= flush_n or out.row_count() >= batch_rows
