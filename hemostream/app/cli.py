@@ -179,8 +179,8 @@ def cmd_query(args) -> int:
                     f"{', '.join(QUALITIES)}" if bad else
                     "applies to observations and derived values only"), highlight=False)
                 return 2
-        n = query.write(query.rows(engine, args.kind, args.bed, args.param, since, args.limit,
-                                   quality), args.format, kind=args.kind)
+        n = query.output(engine, args.kind, args.bed, args.param, since, args.limit, quality,
+                         args.format)
     except StoreError as e:
         err.print(f"[red]error:[/] {e}", highlight=False)
         return 1
