@@ -20,10 +20,9 @@ from sqlalchemy import select
 
 from .core.timetext import format_epoch as iso
 from .core.timetext import format_epochs, parse_time
+from .kinds import KINDS  # noqa: F401  (re-exported)
 from .store import TABLES, config_snapshots, iter_derived, iter_observations
 
-KINDS = ("observations", "derived", "rejected", "notes", "alarms", "admissions", "commands",
-         "configs")
 
 # columns shown per kind, in order (after time, care_unit, bed)
 _COLUMNS: dict[str, tuple[str, ...]] = {
