@@ -165,7 +165,8 @@ def cmd_query(args) -> int:
     else:
         from ..config import load_for_command
 
-        url = args.db or load_for_command(args.config).store.url
+        cfg = load_for_command(args.config)     # checked even when --db overrides it
+        url = args.db or cfg.store.url
     if url.startswith("sqlite:///") and not Path(url[len("sqlite:///"):]).exists():
         err.print(f"[red]error:[/] database file {url[len('sqlite:///'):]!r} does not exist")
         return 1
