@@ -98,7 +98,7 @@ def test_migrations_ship_inside_the_package():
     assert (versions.MIGRATIONS / "env.py").is_file()
     assert versions.MIGRATIONS.parent.name == "hemostream"
     assert sorted(p.name[:4] for p in (versions.MIGRATIONS / "versions").glob("0*.py")) == [
-        "0001", "0002", "0003", "0004", "0005", "0006"]
+        "0001", "0002", "0003", "0004", "0005", "0006", "0007"]
 
 
 def test_head_read_from_the_files_is_alembics():

@@ -86,6 +86,7 @@ def test_upgrade_from_0004_partitions_every_row(midnight, pg_url, tmp_path):
     with dst.begin() as d:                   # and without the indexes of 0005
         for ix in ("ix_obs_chunks_bed_sealed", "ix_obs_chunks_mid_max", "ix_obs_chunks_seq_max"):
             d.exec_driver_sql(f"DROP INDEX {ix}")
+        d.exec_driver_sql("DROP TABLE obs_staging")          # 0007
     with src.connect() as s, dst.begin() as d:
         for name in ("beds", "messages", "obs_chunks", "admissions", "notes", "commands",
                      "rejected", "alarm_events", "config_snapshots", "minute_stats"):

@@ -72,3 +72,16 @@ def test_replay_accounts_for_every_line(tmp_path_factory, recording):
         msgs = c.execute(select(func.count()).select_from(TABLES["messages"])).scalar()
     engine.dispose()
     assert msgs + whole + s.duplicates == s.lines
+
+
+@settings(max_examples=3000, deadline=None)
+@given(st.one_of(st.floats(-2e9, 4e9), st.integers(-2 * 10**9, 4 * 10**9).map(
+    lambda s: s + 0.0005), st.integers(0, 4 * 10**9).map(lambda s: s + 0.9999995)))
+def test_time_text_is_what_the_standard_library_writes(t):
+    """The cached formatter gives exactly Python's own RFC 3339 text (datetime's rounding to
+    the microsecond, isoformat's cut to the millisecond), the reference here."""
+    from datetime import datetime, timezone
+    from hemostream.core.wire import format_epoch
+    want = datetime.fromtimestamp(t, timezone.utc).isoformat(
+        timespec="milliseconds").replace("+00:00", "Z")
+    assert format_epoch(t) == want

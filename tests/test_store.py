@@ -53,6 +53,7 @@ def test_sealed_chunks_hold_messages_and_query_the_same(tmp_path):
     rec.write_text("".join(_line(s, 60 + s % 13, bed) + "\n"
                            for s in range(250) for bed in ("bed-01", "bed-02")))
     small = Config.model_validate({"store": {"chunk_messages": 40, "chunk_segments": 3,
+                                             "stage_messages": 30,
                                              "batch_rows": 50}})
     a, b = f"sqlite:///{tmp_path / 'a.db'}", f"sqlite:///{tmp_path / 'b.db'}"
     replay_file(rec, a, small)
@@ -74,6 +75,45 @@ def test_sealed_chunks_hold_messages_and_query_the_same(tmp_path):
     # restart over the sealed database: every identity is known again
     again = replay_file(rec, a, small)
     assert again.messages == 0 and again.duplicates == 500
+
+
+def test_staged_values_read_back_before_they_are_split(tmp_path):
+    """A batch is staged as one row of every bed's values: readers see staged values as
+    well as segments and sealed chunks, each exactly once, the same as after the split."""
+    from hemostream.replay import feed_line
+    from hemostream.core.processor import Processor
+    from hemostream.store import ObsStaging, rows_of, write_rows, chunker, configure_chunks
+    lines = [_line(s, 60 + s % 13, bed).encode() for s in range(120)
+             for bed in ("bed-01", "bed-02", "bed-03")]
+    ref = tmp_path / "r.jsonl"
+    ref.write_bytes(b"\n".join(lines) + b"\n")
+    b_url = f"sqlite:///{tmp_path / 'b.db'}"
+    replay_file(ref, b_url)
+    want = {k: list(query.rows(open_engine(b_url, create=False), k))
+            for k in ("observations", "derived")}
+    engine = open_engine(f"sqlite:///{tmp_path / 'a.db'}")
+    configure_chunks(engine, messages=40, segments=8, stage_messages=100, stage_s=3600)
+    proc = Processor(Config(), publish=False)
+    for i, line in enumerate(lines, 1):
+        feed_line(proc, line, i, 1 << 20)
+        if i % 25 == 0:                                # batches of 25 messages
+            write_rows(engine, rows_of(proc.drain()))
+    write_rows(engine, rows_of(proc.drain()))
+    with engine.connect() as c:
+        staged = c.execute(select(func.count()).select_from(ObsStaging.__table__)).scalar()
+        sealed = c.execute(select(func.count()).select_from(ObsChunk.__table__)
+                           .where(ObsChunk.__table__.c.sealed.is_(True))).scalar()
+    assert staged >= 2 and sealed >= 3                 # all three kinds of rows at once
+    got = {k: list(query.rows(engine, k)) for k in ("observations", "derived")}
+    assert got == want and len(got["observations"]) == 3 * 120 * 3
+    assert message_count(engine) == 360
+    one = list(query.rows(engine, "observations", bed="SDU1/bed-02", param="HR"))
+    assert [r["value"] for r in one] == [60 + s % 13 for s in range(120)]
+    with engine.begin() as c:                          # what a closing writer does
+        chunker(engine).compact_all(c)
+    assert {k: list(query.rows(engine, k)) for k in ("observations", "derived")} == want
+    assert [m["seq"] for m in iter_messages(engine)] == [m["seq"] for m in iter_messages(
+        open_engine(b_url, create=False))]
 
 
 def test_prune_dry_run_then_prune(tmp_path, capsys):

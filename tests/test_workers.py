@@ -106,7 +106,7 @@ def test_the_stored_past_rebuilds_the_same_alarms_sealed_chunks_included(tmp_pat
 
     cfg = Config.model_validate({
         "units": [{"id": "W01", "beds": ["bed-01", "bed-02"]}],
-        "store": {"chunk_messages": 40},
+        "store": {"chunk_messages": 40, "stage_messages": 50},
         "rules": {"limits": {"HR": {"low": 40.0, "high": 140.0, "delay_s": 1.0,
                                     "clear_delay_s": 1.0, "latching": False}}}})
     first = Processor(cfg, rules=make_rules(cfg))

@@ -105,6 +105,10 @@ class StoreConfig(BaseModel):
     #: observation messages; before that, at most ``chunk_segments`` open segments
     chunk_messages: Annotated[int, Field(gt=0)] = 900
     chunk_segments: Annotated[int, Field(gt=1)] = 128
+    #: each write batch is staged as one row of every bed's values; the staged rows are
+    #: split into per-bed segments every ``stage_messages`` messages or ``stage_s`` seconds
+    stage_messages: Annotated[int, Field(gt=0)] = 20000
+    stage_s: Annotated[float, Field(gt=0)] = 60.0
     retention: RetentionConfig = Field(default_factory=RetentionConfig)
     #: derived values are recomputable from the stored observations, so each (bed, value)
     #: is stored when it first appears, when it moved by more than `derived_deadband`
@@ -177,6 +181,10 @@ class BrokerConfig(BaseModel):
     #: outgoing QoS 1 messages in flight / queued in the client
     outgoing_inflight: Annotated[int, Field(ge=1)] = 100
     outgoing_queue: Annotated[int, Field(ge=0)] = 20000
+    #: QoS of the ``derived`` publications: 0 (default; a live stream, one per input
+    #: message, recomputable from the stored observations: no PUBACK to wait for and handle)
+    #: or 1. Alarm state, alarm events and status are always QoS 1.
+    derived_qos: Literal[0, 1] = 0
 
 
 class WorkersConfig(BaseModel):

@@ -7,6 +7,7 @@ wire format. :mod:`.wire` re-exports these functions.
 
 from __future__ import annotations
 
+import math
 from datetime import datetime, timezone
 from typing import Any, Sequence
 
@@ -73,8 +74,26 @@ def format_epoch(t: float) -> str:
     >>> format_epoch(1796112000.25)
     '2026-12-01T08:00:00.250Z'
     """
-    return datetime.fromtimestamp(t, timezone.utc).isoformat(
-        timespec="milliseconds").replace("+00:00", "Z")
+    # datetime.fromtimestamp's own rounding (to the microsecond, half to even), then the
+    # milliseconds cut as isoformat cuts them; the whole-second text is cached (a feed
+    # formats the same second many times), so this is a dictionary look-up and an f-string
+    frac, whole = math.modf(t)
+    us = round(frac * 1e6)
+    if us >= 1_000_000:
+        whole, us = whole + 1, us - 1_000_000
+    elif us < 0:
+        whole, us = whole - 1, us + 1_000_000
+    sec = int(whole)
+    head = _SECONDS.get(sec)
+    if head is None:
+        if len(_SECONDS) >= 8192:
+            _SECONDS.clear()
+        head = _SECONDS[sec] = datetime.fromtimestamp(sec, timezone.utc).replace(
+            tzinfo=None).isoformat(timespec="seconds")
+    return f"{head}.{us // 1000:03d}Z"
+
+
+_SECONDS: dict[int, str] = {}
 
 
 #: epoch seconds of 1000-01-01 and 10000-01-01: inside, every time's text has a 4-digit year

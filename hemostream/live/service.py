@@ -119,8 +119,10 @@ class Outbox:
       (they are stored, and recomputable from the stored observations).
     """
 
-    def __init__(self, transport: Transport, health: Health, max_events: int) -> None:
+    def __init__(self, transport: Transport, health: Health, max_events: int,
+                 derived_qos: int = 0) -> None:
         self.t = transport
+        self.derived_qos = derived_qos
         self.health = health
         self.max_events = max_events
         self.retained: dict[str, bytes] = {}
@@ -142,7 +144,7 @@ class Outbox:
                 t.publish(topic, data, 1, True)   # a lost one is republished on reconnect
             return
         if topic.endswith("/derived"):
-            if t.connected and t.publish(topic, data, 1, False) is not None:
+            if t.connected and t.publish(topic, data, self.derived_qos, False) is not None:
                 self.health.derived_published += 1
             else:
                 self.health.shed["derived_while_offline"] += 1
@@ -208,7 +210,8 @@ class Service:
         self.filters = subscription_filters(cfg)
         self.status_topic = status_topic(cfg)
         self.health = Health(cfg.instance, started=clock())
-        self.outbox = Outbox(transport, self.health, cfg.broker.offline_events)
+        self.outbox = Outbox(transport, self.health, cfg.broker.offline_events,
+                             cfg.broker.derived_qos)
         self.fatal: str | None = None
         self.proc: Processor | None = None
         self.writer: Writer | None = None

@@ -23,7 +23,7 @@ from . import versions
 from .chunks import (Chunker, iter_derived, iter_observations,  # noqa: F401  (re-exported)
                      sealed_messages)
 from .schema import (CHUNKED, INSERT_ORDER, TABLES, AlarmEvent, Admission, Base,  # noqa: F401
-                     Bed, Command, ConfigSnapshot, Message, MinuteStat, Note, ObsChunk,
+                     Bed, Command, ConfigSnapshot, Message, MinuteStat, Note, ObsChunk, ObsStaging,
                      Rejected)
 
 log = logging.getLogger(__name__)

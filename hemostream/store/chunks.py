@@ -16,12 +16,13 @@ from __future__ import annotations
 
 import bisect
 import json
+import time as _time
 from itertools import repeat
 from operator import itemgetter
 from typing import Any, Iterable, Iterator, Sequence
 
 import numpy as np
-from sqlalchemy import delete, func, insert, select
+from sqlalchemy import delete, func, insert, null, select, union_all
 from sqlalchemy.engine import Connection
 
 from ..core.outputs import inputs_json
@@ -39,9 +40,14 @@ DER_COLS = ("d_seq", "d_param", "d_time", "d_value", "d_unit", "d_inputs_text", 
 QUALITY_COLS = ("o_quality", "d_quality")
 PERM = {"o_value": "o_param", "d_value": "d_param"}
 
-#: defaults of [store] chunk_messages / chunk_segments (the writer reads the configuration)
+#: defaults of [store] chunk_messages / chunk_segments / stage_messages / stage_s (the
+#: writer reads the configuration)
 CHUNK_MESSAGES = 900
 CHUNK_SEGMENTS = 128
+STAGE_MESSAGES = 20000
+STAGE_S = 60.0
+#: beds sealed per write transaction at least (more while a backlog waits)
+SEALS_PER_WRITE = 4
 
 
 def _pack_inputs(d_time: float, text: str) -> str:
@@ -74,12 +80,16 @@ def _unpack_inputs(d_time: float, s: str) -> str:
     return inputs_json(pairs)
 
 
-def block_of(obs: list[tuple], der: list[dict], seq0: int) -> dict[str, Any]:
-    """The block of one bed's rows (observation tuples, derived dicts)."""
+def block_of(obs: list[tuple], der: list[dict], seq0: int, beds: bool = False
+             ) -> dict[str, Any]:
+    """The block of one bed's rows (observation tuples, derived dicts); ``beds``: of any
+    beds, with each row's bed in ``o_bed``/``d_bed`` (a staged block)."""
     f8, i8 = np.float64, np.int64
     blk: dict[str, Any] = {}
     if obs:
-        mid, _bed, param, t, value, unit, raw, raw_unit, status, late = list(zip(*obs))[:10]
+        mid, bed, param, t, value, unit, raw, raw_unit, status, late = list(zip(*obs))[:10]
+        if beds:
+            blk["o_bed"] = np.array(bed, i8)
         quality = [o[10] if len(o) > 10 else from_status(o[8]) for o in obs]
         v = np.array(value, f8)
         r = np.array(raw, f8)
@@ -92,6 +102,8 @@ def block_of(obs: list[tuple], der: list[dict], seq0: int) -> dict[str, Any]:
             blk["o_quality"] = quality
     if der:
         times = [d["time"] for d in der]
+        if beds:
+            blk["d_bed"] = np.array([d["bed_id"] for d in der], i8)
         blk.update(d_seq=np.arange(seq0, seq0 + len(der), dtype=i8),
                    d_param=[d["param"] for d in der], d_time=np.array(times, f8),
                    d_value=np.array([d["value"] for d in der], f8),
@@ -128,6 +140,52 @@ def qualities(b: dict[str, Any], kind: str) -> list[str]:
     return [OK] * len(b.get("d_seq", ()))
 
 
+def split_block(blk: dict[str, Any], want: Any = None) -> dict[int, dict[str, Any]]:
+    """A staged block's rows by bed, as per-bed blocks (rows keep their order); ``want``:
+    only these beds.
+
+    >>> blk = block_of([(1, 7, "HR", 10.0, 60.0, "/min", 60.0, "/min", "valid", False),
+    ...                 (2, 8, "HR", 10.0, 70.0, "/min", 70.0, "/min", "valid", False),
+    ...                 (3, 7, "HR", 11.0, 61.0, "/min", 61.0, "/min", "valid", False)],
+    ...                [], 1, beds=True)
+    >>> {b: x["o_value"].tolist() for b, x in split_block(blk).items()}
+    {7: [60.0, 61.0], 8: [70.0]}
+    """
+    out: dict[int, dict[str, Any]] = {}
+    for kind in ("o", "d"):
+        bed = blk.get(f"{kind}_bed")
+        if bed is None or not len(bed):
+            continue
+        cols = {n: c for n, c in blk.items() if n.startswith(f"{kind}_")
+                and n not in (f"{kind}_bed", f"{kind}_quality", "o_raw")}
+        if kind == "o":                              # raw values: whole length while split
+            raw = blk["o_value"].copy()
+            raw[blk["o_conv"]] = blk["o_raw"]
+            cols["o_raw"] = raw
+        cols[f"{kind}_quality"] = qualities(blk, kind)
+        order = np.argsort(bed, kind="stable")
+        sb = bed[order]
+        cuts = [0, *(np.flatnonzero(np.diff(sb)) + 1).tolist(), len(sb)]
+        ol = order.tolist()
+        sorted_cols = {n: (c[order] if isinstance(c, np.ndarray) else [c[i] for i in ol])
+                       for n, c in cols.items()}
+        for a, b in zip(cuts[:-1], cuts[1:]):
+            bed_id = int(sb[a])
+            if want is not None and bed_id not in want:
+                continue
+            part = out.setdefault(bed_id, {})
+            for n, c in sorted_cols.items():
+                part[n] = c[a:b]
+            if kind == "o":
+                part["o_raw"] = part["o_raw"][part["o_conv"]]
+                if all(q == from_status(st) for q, st in zip(part["o_quality"],
+                                                                part["o_status"])):
+                    del part["o_quality"]
+            elif all(q == OK for q in part["d_quality"]):
+                del part["d_quality"]
+    return out
+
+
 def chunk_row(bed_id: int, blk: dict[str, Any], sealed: bool, level: int) -> dict[str, Any]:
     times = [blk[c] for c in ("o_time", "d_time") if c in blk]
     allt = np.concatenate(times) if times else np.zeros(0)
@@ -153,50 +211,111 @@ def decode(data: bytes, columns: Any = None) -> dict[str, Any]:
     return codec.decode(data, columns)
 
 
-class Chunker:
-    """Per engine: next derived sequence number and each bed's unsealed segments."""
+def staging_row(blk: dict[str, Any]) -> dict[str, Any]:
+    """The ``obs_staging`` row of a staged block (zlib level 1: it lives about a minute)."""
+    times = [blk[c] for c in ("o_time", "d_time") if c in blk]
+    allt = np.concatenate(times)
+    m = blk.get("o_mid", np.zeros(0, np.int64))
+    return {"t_min": float(allt.min()), "t_max": float(allt.max()),
+            "n_messages": int(len(np.unique(m))), "n_obs": len(m),
+            "n_derived": len(blk.get("d_seq", ())),
+            "mid_max": int(m.max()) if len(m) else None,
+            "seq_max": int(blk["d_seq"].max()) if "d_seq" in blk else None,
+            "data": codec.encode(blk, level=1, perm=PERM)}
 
-    def __init__(self, messages: int = CHUNK_MESSAGES, segments: int = CHUNK_SEGMENTS) -> None:
+
+class Chunker:
+    """Per engine: the next derived sequence number, what is staged, each bed's unsealed
+    segments, and the beds waiting to be sealed.
+
+    A write batch becomes one staged row (every bed of the batch in one block). Every
+    ``stage_messages`` staged messages or ``stage_s`` seconds the staged rows are split
+    into one segment per bed; a bed with ``messages`` observation messages in segments is
+    queued for sealing, and each write seals a few queued beds (a ward that started at
+    once does not seal every bed in one transaction)."""
+
+    def __init__(self, messages: int = CHUNK_MESSAGES, segments: int = CHUNK_SEGMENTS,
+                 stage_messages: int = STAGE_MESSAGES, stage_s: float = STAGE_S) -> None:
         self.messages, self.segments = messages, segments
+        self.stage_messages, self.stage_s = stage_messages, stage_s
         self.next_seq: int | None = None
         self.open: dict[int, list[int]] = {}      # bed_id -> [segments, messages] unsealed
+        self.staged: int | None = None            # messages in obs_staging (as far as known)
+        self.staged_since: float | None = None    # monotonic time the oldest was staged
+        self.to_seal: dict[int, bool] = {}        # bed_id -> final, in the order queued
 
     def write(self, conn: Connection, obs: list[Any], der: list[Any]) -> None:
-        t = TABLES["obs_chunks"]
+        t, st = TABLES["obs_chunks"], TABLES["obs_staging"]
         if self.next_seq is None:
-            self.next_seq = (conn.execute(select(func.max(t.c.seq_max))).scalar() or 0) + 1
-        per: dict[int, tuple[list[tuple], list[dict]]] = {}
-        for o in obs:
-            per.setdefault(o[1], ([], []))[0].append(o)
-        for d in der:
-            per.setdefault(d["bed_id"], ([], []))[1].append(d)
-        rows = []
-        for bed_id, (obs_b, der_b) in per.items():
-            blk = block_of(obs_b, der_b, self.next_seq)
-            self.next_seq += len(der_b)
-            rows.append(chunk_row(bed_id, blk, False, 1))
-        if not rows:
-            return
-        _insert(conn, rows)
+            self.next_seq = max(conn.execute(select(func.max(t.c.seq_max))).scalar() or 0,
+                                conn.execute(select(func.max(st.c.seq_max))).scalar() or 0) + 1
+        if self.staged is None:
+            self.staged = int(conn.execute(
+                select(func.coalesce(func.sum(st.c.n_messages), 0))).scalar() or 0)
+            if self.staged:
+                self.staged_since = _time.monotonic()
+        if obs or der:
+            blk = block_of(obs, der, self.next_seq, beds=True)
+            self.next_seq += len(der)
+            row = staging_row(blk)
+            conn.execute(insert(st), [row])
+            self.staged += max(row["n_messages"], 1)
+            if self.staged_since is None:
+                self.staged_since = _time.monotonic()
+        if self.staged and (self.staged >= self.stage_messages or
+                            _time.monotonic() - (self.staged_since or 0) >= self.stage_s):
+            self.split(conn)
+        self._seal_some(conn)
+
+    def split(self, conn: Connection) -> int:
+        """Turn the staged rows into per-bed segments; how many staged rows went."""
+        st = TABLES["obs_staging"]
+        # SKIP LOCKED (PostgreSQL): two writers splitting at once take disjoint rows
+        staged = conn.execute(select(st.c.id, st.c.data).order_by(st.c.id)
+                              .with_for_update(skip_locked=True)).all()
+        self.staged, self.staged_since = 0, None
+        if not staged:
+            return 0
+        per = split_block(merge([decode(r.data) for r in staged]))
+        rows = [chunk_row(bed_id, blk, False, 1) for bed_id, blk in sorted(per.items())]
+        if rows:
+            _insert(conn, rows)
+        ids = [r.id for r in staged]
+        for k in range(0, len(ids), 500):
+            conn.execute(delete(st).where(st.c.id.in_(ids[k:k + 500])))
+        t = TABLES["obs_chunks"]
         for r in rows:
-            st = self.open.get(r["bed_id"])
-            if st is None:
-                st = self.open[r["bed_id"]] = list(conn.execute(
+            b = r["bed_id"]
+            op = self.open.get(b)
+            if op is None:               # read once per bed: it includes the rows just made
+                op = self.open[b] = list(conn.execute(
                     select(func.count(), func.coalesce(func.sum(t.c.n_messages), 0))
-                    .where(t.c.bed_id == r["bed_id"], t.c.sealed.is_(False))).one())
+                    .where(t.c.bed_id == b, t.c.sealed.is_(False))).one())
             else:
-                st[0] += 1
-                st[1] += r["n_messages"]
-            if st[1] >= self.messages:
-                seal(conn, r["bed_id"])
-                st[0] = st[1] = 0
-            elif st[0] >= self.segments:
-                seal(conn, r["bed_id"], final=False)
-                st[0] = 1
+                op[0] += 1
+                op[1] += r["n_messages"]
+            if op[1] >= self.messages:
+                self.to_seal[b] = True
+            elif op[0] >= self.segments:
+                self.to_seal.setdefault(b, False)
+        return len(staged)
+
+    def _seal_some(self, conn: Connection) -> None:
+        n = SEALS_PER_WRITE + len(self.to_seal) // 16      # keeps up with any backlog
+        for b in list(self.to_seal)[:n]:
+            final = self.to_seal.pop(b)
+            seal(conn, b, final=final)
+            op = self.open.get(b)
+            if op is not None:
+                op[0], op[1] = (0, 0) if final else (1, op[1])
 
     def compact_all(self, conn: Connection) -> int:
-        """Merge every bed's open segments into one (a writer closing): fewer, smaller rows;
-        the messages stay in ``messages`` until the bed's chunk is really sealed."""
+        """A writer closing: split what is staged, seal the beds that are due, and merge
+        every other bed's open segments into one (fewer, smaller rows; the messages stay in
+        ``messages`` until the bed's chunk is really sealed)."""
+        self.split(conn)
+        while self.to_seal:
+            self._seal_some(conn)
         t = TABLES["obs_chunks"]
         beds = [r[0] for r in conn.execute(
             select(t.c.bed_id).where(t.c.sealed.is_(False)).group_by(t.c.bed_id)
@@ -233,8 +352,12 @@ def seal(conn: Connection, bed_id: int, final: bool = True) -> int:
     mt = TABLES["messages"]
     ids: list[int] = []
     if final:
+        # only messages up to the newest whose observations are in these segments: a later
+        # message's observations may still be staged, and go into the next chunk with it
+        upto = int(blk["o_mid"].max()) if len(blk.get("o_mid", ())) else -1
         msgs = conn.execute(select(*[mt.c[c] for c in _M_COLS]).where(
-            mt.c.bed_id == bed_id, mt.c.kind == "obs").order_by(mt.c.id)).all()
+            mt.c.bed_id == bed_id, mt.c.kind == "obs", mt.c.id <= upto)
+            .order_by(mt.c.id)).all()
         if msgs:
             cols = list(zip(*msgs))
             ids = list(cols[0])
@@ -279,18 +402,56 @@ def sealed_messages(conn: Connection, min_mid: int | None = None,
 
 # --------------------------------------------------------------------------- reading
 
+class _Piece:
+    """One bed's rows of a chunk or segment (decoded when asked), or of a staged block."""
+
+    __slots__ = ("t_min", "id", "bed_id", "_data", "_blk")
+
+    def __init__(self, t_min: float, id_: int, bed_id: int, data: bytes | None = None,
+                 blk: dict[str, Any] | None = None) -> None:
+        self.t_min, self.id, self.bed_id, self._data, self._blk = t_min, id_, bed_id, data, blk
+
+    def block(self, columns: str) -> dict[str, Any]:
+        if self._blk is not None:
+            return self._blk
+        assert self._data is not None
+        return decode(self._data, columns)
+
+
 def _chunks(conn: Connection, bed_ids: Iterable[int] | None, t0: float | None,
-            t1: float | None, need: str) -> Sequence[Any]:
-    t = TABLES["obs_chunks"]
-    stmt = select(t.c.id, t.c.bed_id, t.c.t_min, t.c.data).where(
+            t1: float | None, need: str) -> list[_Piece]:
+    """The pieces to read, by t_min: the chunks and segments of the asked beds and times,
+    and the asked beds' rows of the staged blocks, read in the same statement (one
+    snapshot: a split committing meanwhile cannot show a row twice or not at all)."""
+    t, st = TABLES["obs_chunks"], TABLES["obs_staging"]
+    beds = list(bed_ids) if bed_ids is not None else None
+    a = select(t.c.id, t.c.bed_id, t.c.t_min, t.c.data).where(
         (t.c.n_obs if need == "obs" else t.c.n_derived) > 0)
-    if bed_ids is not None:
-        stmt = stmt.where(t.c.bed_id.in_(list(bed_ids)))
-    if t0 is not None:
-        stmt = stmt.where(t.c.t_max >= t0)
-    if t1 is not None:
-        stmt = stmt.where(t.c.t_min <= t1)
-    return conn.execute(stmt.order_by(t.c.t_min, t.c.id)).all()
+    b = select(st.c.id, null().label("bed_id"), st.c.t_min, st.c.data).where(
+        (st.c.n_obs if need == "obs" else st.c.n_derived) > 0)
+    if beds is not None:
+        a = a.where(t.c.bed_id.in_(beds))
+    for q, tab in ((0, t), (1, st)):
+        cond = []
+        if t0 is not None:
+            cond.append(tab.c.t_max >= t0)
+        if t1 is not None:
+            cond.append(tab.c.t_min <= t1)
+        if q == 0:
+            a = a.where(*cond)
+        else:
+            b = b.where(*cond)
+    u = union_all(a, b).subquery()
+    out: list[_Piece] = []
+    want = set(beds) if beds is not None else None
+    prefix = "o_" if need == "obs" else "d_"
+    for r in conn.execute(select(u).order_by(u.c.t_min, u.c.id)).all():
+        if r.bed_id is not None:
+            out.append(_Piece(r.t_min, r.id, r.bed_id, data=r.data))
+            continue
+        for bed_id, blk in sorted(split_block(decode(r.data, prefix), want).items()):
+            out.append(_Piece(r.t_min, r.id, bed_id, blk=blk))
+    return out
 
 
 def _merge_rows(chunks: Sequence[Any], rows_of) -> Iterator[tuple]:
@@ -321,7 +482,9 @@ def iter_observations(conn: Connection, bed_ids: Iterable[int] | None = None,
     qs = set(quality) if quality is not None else None
 
     def rows_of(c):
-        b = decode(c.data, "o_")
+        b = c.block("o_")
+        if "o_value" not in b:
+            return []
         raw = b["o_value"].copy()
         raw[b["o_conv"]] = b["o_raw"]
         t = b["o_time"]
@@ -361,7 +524,7 @@ def iter_derived(conn: Connection, bed_ids: Iterable[int] | None = None,
     qs = set(quality) if quality is not None else None
 
     def rows_of(c):
-        b = decode(c.data, "d_")
+        b = c.block("d_")
         out = []
         dq = qualities(b, "d")
         for t, sq, p, v, u, it, q in zip(b["d_time"].tolist(), b["d_seq"].tolist(),

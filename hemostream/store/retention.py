@@ -198,8 +198,11 @@ def stats(engine: Engine) -> dict[str, Any]:
     with engine.connect() as conn:
         for n, t in T.items():
             rows[n] = int(conn.execute(select(func.count()).select_from(t)).scalar() or 0)
-        n_obs, n_der = conn.execute(select(func.coalesce(func.sum(ch.c.n_obs), 0),
-                                           func.coalesce(func.sum(ch.c.n_derived), 0))).one()
+        n_obs, n_der = 0, 0
+        for tab in (ch, T["obs_staging"]):          # chunks, and values not yet split
+            o, d = conn.execute(select(func.coalesce(func.sum(tab.c.n_obs), 0),
+                                       func.coalesce(func.sum(tab.c.n_derived), 0))).one()
+            n_obs, n_der = n_obs + o, n_der + d
         spans: dict[int, list[Any]] = {}
         for b, lo, hi in list(conn.execute(select(ch.c.bed_id, func.min(ch.c.t_min),
                                                   func.max(ch.c.t_max))

@@ -174,6 +174,25 @@ class ObsChunk(Base):
                       Index("ix_obs_chunks_seq_max", "seq_max"))
 
 
+class ObsStaging(Base):
+    """A write batch's observations and derived values of every bed, packed as one block
+    (:mod:`.chunks`: the columns of a segment plus ``o_bed``/``d_bed``). The writer splits
+    the staged blocks into per-bed segments of ``obs_chunks`` every ``store.stage_messages``
+    messages or ``store.stage_s`` seconds, in one transaction, so a batch of forty beds
+    costs one encoded row rather than forty. Readers read staged rows as well."""
+
+    __tablename__ = "obs_staging"
+    id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
+    t_min: Mapped[float] = mapped_column(Float(53))
+    t_max: Mapped[float] = mapped_column(Float(53))
+    n_messages: Mapped[int] = mapped_column(Integer)
+    n_obs: Mapped[int] = mapped_column(Integer)
+    n_derived: Mapped[int] = mapped_column(Integer)
+    mid_max: Mapped[int | None] = mapped_column(BigInteger)
+    seq_max: Mapped[int | None] = mapped_column(BigInteger)
+    data: Mapped[bytes] = mapped_column(LargeBinary)
+
+
 class MinuteStat(Base):
     """Per-minute summary of one bed's parameter (observation or derived value), kept after
     the full-rate data is pruned: median, min, max and count of its valid values."""
@@ -194,7 +213,8 @@ class MinuteStat(Base):
 
 TABLES: dict[str, Table] = {k: cast(Table, v) for k, v in {
     "beds": Bed.__table__, "messages": Message.__table__,
-    "obs_chunks": ObsChunk.__table__, "minute_stats": MinuteStat.__table__,
+    "obs_chunks": ObsChunk.__table__, "obs_staging": ObsStaging.__table__,
+    "minute_stats": MinuteStat.__table__,
     "admissions": Admission.__table__, "notes": Note.__table__,
     "commands": Command.__table__, "rejected": Rejected.__table__,
     "alarm_events": AlarmEvent.__table__, "config_snapshots": ConfigSnapshot.__table__,

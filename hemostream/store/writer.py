@@ -59,9 +59,14 @@ def chunker(engine: Engine) -> Chunker:
     return c
 
 
-def configure_chunks(engine: Engine, messages: int, segments: int) -> None:
+def configure_chunks(engine: Engine, messages: int, segments: int,
+                     stage_messages: int | None = None, stage_s: float | None = None) -> None:
     c = chunker(engine)
     c.messages, c.segments = messages, segments
+    if stage_messages is not None:
+        c.stage_messages = stage_messages
+    if stage_s is not None:
+        c.stage_s = stage_s
 
 
 class Fenced(RuntimeError):
@@ -230,7 +235,8 @@ class Writer:
     def __init__(self, engine: Engine, max_batches: int = 64, store_cfg: Any = None) -> None:
         self.engine = engine
         if store_cfg is not None:
-            configure_chunks(engine, store_cfg.chunk_messages, store_cfg.chunk_segments)
+            configure_chunks(engine, store_cfg.chunk_messages, store_cfg.chunk_segments,
+                             store_cfg.stage_messages, store_cfg.stage_s)
         self.q: queue.Queue = queue.Queue(max_batches)
         self.error: BaseException | None = None
         self.batches = 0
