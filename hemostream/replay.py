@@ -20,6 +20,7 @@ from .core.processor import Counters, Processor, RecordingLineBytes
 from .core.rules.protocol import RulesLayer
 from .core.wire import ObsMessage, Time, epoch, parse_time
 from .pipeline import make_rules
+from .runtime import settle_gc
 from .store import TABLES, Writer, load_resume, open_engine, record_config, rows_of
 
 
@@ -185,6 +186,7 @@ def replay_file(path: str | Path, db_url: str | None = None, config: Config | No
                      known_beds=resume.beds,
                      known_messages=resume.messages)
     writer = Writer(engine, max_batches=4, store_cfg=cfg.store)   # bounded: paces the reader
+    settle_gc()
     summary = ReplaySummary(path=str(p), db_url=url)
     batch_rows = cfg.store.batch_rows
     max_bytes = cfg.ingest.max_payload_bytes

@@ -471,7 +471,7 @@ class Processor:
                 stored[param] = (dt, value, q)
                 rows.append({"bed_id": bed_id, "param": param, "time": dt, "value": value,
                              "unit": DERIVED_UNITS[param], "inputs": inputs_json(d[2]),
-                             "quality": q})
+                             "quality": q, "pairs": d[2]})
                 n_stored += 1
         self.counters.derived_stored += n_stored
         if fault is not None:

@@ -4,6 +4,9 @@ The contract between bedside gateways (or the simulators) and hemostream. It is 
 for integration engineers in ``docs/wire-format.md``; this module is its executable form.
 Unknown JSON fields are ignored (so the format can grow compatibly); wrong types, missing
 fields and out-of-range values are errors that name the field.
+
+Size: the whole version-1 contract (topics, time text both ways, every payload model and the
+recording line) in one module, so a reader checks it against docs/wire-format.md in one place.
 """
 
 from __future__ import annotations

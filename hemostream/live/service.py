@@ -39,6 +39,7 @@ from ..core.config import Config
 from ..core.processor import Processor
 from ..core.rules.protocol import RulesLayer
 from ..core.wire import encode, format_epoch, input_filters
+from ..runtime import settle_gc
 from ..core.wire import status_topic as instance_status_topic
 from ..pipeline import make_rules
 from ..store import StoreError, Writer, load_resume, open_engine, record_config, rows_of
@@ -275,6 +276,7 @@ class Service:
             return 1
         sqlite_synchronous(engine, cfg.store.sqlite_synchronous)
         known = await self.prepare(engine)
+        settle_gc()                        # hemostream/runtime.py: the state is built
         self.inq: asyncio.Queue = asyncio.Queue(b.queue_size)
         log.info("hemostream %s: database %s, %s, subscribing to %s", cfg.instance,
                  _safe_url(self.db_url), known, ", ".join(self.filters))

@@ -30,6 +30,7 @@ from typing import Any, Callable
 from ..core.config import Config
 from ..core.processor import Processor
 from ..pipeline import make_rules
+from ..runtime import settle_gc
 from ..store import Writer, open_engine, record_config
 from ..store.history import unit_past
 from .leases import Leases, id_base, share
@@ -158,6 +159,7 @@ class Pool:
         log.info("worker %s: sharing %d unit(s) with the other workers on this database "
                  "(lease %.0f s, checked every %.1f s)", self.name, len(self.units),
                  w.lease_s, w.check_every_s)
+        settle_gc()                        # hemostream/runtime.py
         last_ok = time.monotonic()
         try:
             while not self._stop.is_set():

@@ -20,11 +20,11 @@ from sqlalchemy.engine import Engine
 
 from ..core.redact import redact
 from . import versions
-from .chunks import (Chunker, iter_derived, iter_observations,  # noqa: F401  (re-exported)
-                     sealed_messages)
+from .chunks import Chunker  # noqa: F401  (re-exported)
+from .reading import iter_derived, iter_observations, sealed_messages  # noqa: F401
 from .schema import (CHUNKED, INSERT_ORDER, TABLES, AlarmEvent, Admission, Base,  # noqa: F401
-                     Bed, Command, ConfigSnapshot, Message, MinuteStat, Note, ObsChunk, ObsStaging,
-                     Rejected)
+                     Bed, Command, ConfigSnapshot, Message, MinuteStat, Note, ObsChunk,
+                     ObsStaging, Rejected)
 
 log = logging.getLogger(__name__)
 

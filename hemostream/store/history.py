@@ -25,7 +25,7 @@ from sqlalchemy.engine import Connection
 
 from ..core.dedup import obs_identity
 from ..core.wire import format_epoch as iso
-from .chunks import iter_observations, sealed_messages
+from .reading import iter_observations, sealed_messages
 from .schema import TABLES
 
 

@@ -75,13 +75,15 @@ class Fenced(RuntimeError):
 
 
 def write_rows(engine: Engine, rows: dict[str, list[Any]],
-               guard: Callable[[Any], None] | None = None) -> None:
+               guard: Callable[[Any], None] | None = None,
+               chunks: Chunker | None = None) -> None:
     """Insert rows of several tables in one transaction (foreign-key order).
 
     The hot path: each table's batch goes to the driver as one statement - ``executemany``
     compiled by SQLAlchemy for the dialect, or on PostgreSQL one ``COPY ... FROM STDIN``
     (:mod:`.pg`) - with no per-row ORM or type-processing work (the values are already
-    plain floats, ints, strings, booleans and bytes).
+    plain floats, ints, strings, booleans and bytes). ``chunks``: the writer's own
+    :class:`Chunker` (default: the engine's).
     """
     if engine.dialect.name == "postgresql":
         _partitions_first(engine, rows)
@@ -94,8 +96,8 @@ def write_rows(engine: Engine, rows: dict[str, list[Any]],
         for name in INSERT_ORDER:
             if name in CHUNKED:
                 if name == "observations" and (rows.get("observations") or rows.get("derived")):
-                    chunker(engine).write(conn, rows.get("observations") or [],
-                                          rows.get("derived") or [])
+                    (chunks or chunker(engine)).write(conn, rows.get("observations") or [],
+                                                      rows.get("derived") or [])
                 continue
             batch = rows.get(name)
             if batch:
@@ -237,6 +239,11 @@ class Writer:
         if store_cfg is not None:
             configure_chunks(engine, store_cfg.chunk_messages, store_cfg.chunk_segments,
                              store_cfg.stage_messages, store_cfg.stage_s)
+        # its own staging and sealing state: several writers of one process (the workers'
+        # units) share an engine, each on its own thread
+        d = chunker(engine)
+        self.chunks = Chunker(d.messages, d.segments, d.stage_messages, d.stage_s)
+        self.chunks.seq_source = d
         self.q: queue.Queue = queue.Queue(max_batches)
         self.error: BaseException | None = None
         self.batches = 0
@@ -294,7 +301,7 @@ class Writer:
         pause = RETRY_FIRST_S
         while True:
             try:
-                write_rows(self.engine, rows, self.guard)
+                write_rows(self.engine, rows, self.guard, self.chunks)
             except Exception as e:  # noqa: BLE001
                 if isinstance(e, Fenced) or _content_error(e) or self._closing:
                     raise
@@ -366,7 +373,7 @@ class Writer:
         if self.error is None and not self._closing:
             try:       # fewer, better-compressed rows for each bed's open segments
                 with self.engine.begin() as conn:
-                    chunker(self.engine).compact_all(conn)
+                    self.chunks.compact_all(conn)
             except Exception as e:  # noqa: BLE001 - an optimisation only
                 log.warning("could not compact the open chunks: %s", _first_line(e))
         if self.error is not None:
