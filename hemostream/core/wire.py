@@ -5,8 +5,9 @@ for integration engineers in ``docs/wire-format.md``; this module is its executa
 Unknown JSON fields are ignored (so the format can grow compatibly); wrong types, missing
 fields and out-of-range values are errors that name the field.
 
-Size: the whole version-1 contract (topics, time text both ways, every payload model and the
-recording line) in one module, so a reader checks it against docs/wire-format.md in one place.
+Size: the whole version-1 contract (topics, every payload model and the recording line) in
+one module, so a reader checks it against docs/wire-format.md in one place; the time text both
+ways is in :mod:`.timetext` (light, for the query command) and re-exported here.
 """
 
 from __future__ import annotations
