@@ -116,6 +116,32 @@ def test_staged_values_read_back_before_they_are_split(tmp_path):
         open_engine(b_url, create=False))]
 
 
+def test_freed_pages_go_back_to_the_file_system(tmp_path):
+    """Staged rows split, segments merged and messages moved leave free pages; a SQLite
+    file hemostream made is incremental-vacuum, and the closing writer and a prune give
+    them back (the file is what a unit's disk holds, docs/storage.md)."""
+    import sqlite3
+    rec = tmp_path / "r.jsonl"
+    rec.write_text("".join(_line(s, 60 + s % 13, bed) + "\n"
+                           for s in range(400) for bed in ("bed-01", "bed-02", "bed-03")))
+    db = tmp_path / "f.db"
+    cfg = Config.model_validate({"store": {"chunk_messages": 100, "stage_messages": 150,
+                                           "batch_rows": 300}})
+    replay_file(rec, f"sqlite:///{db}", cfg)
+    c = sqlite3.connect(db)
+    assert c.execute("PRAGMA auto_vacuum").fetchone()[0] == 2           # incremental
+    assert c.execute("PRAGMA freelist_count").fetchone()[0] == 0
+    c.close()
+    before = db.stat().st_size
+    rep = prune(open_engine(f"sqlite:///{db}", create=False), Config().store.retention,
+                1796112000 + 31 * 86400.0)
+    assert rep.removed["observations"] == 3 * 400 * 3 and rep.pages_freed > 0
+    c = sqlite3.connect(db)
+    assert c.execute("PRAGMA freelist_count").fetchone()[0] == 0
+    c.close()
+    assert db.stat().st_size < before
+
+
 def test_prune_dry_run_then_prune(tmp_path, capsys):
     rec = tmp_path / "r.jsonl"
     rec.write_text("".join(_line(s, 60 + s % 13) + "\n" for s in range(180)))

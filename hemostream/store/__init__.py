@@ -76,6 +76,9 @@ def open_engine(url: str, *, create: bool = True, check: bool = True) -> Engine:
         @event.listens_for(engine, "connect")
         def _pragmas(dbapi_conn, _rec):  # pragma: no cover - exercised via every test
             cur = dbapi_conn.cursor()
+            # before WAL: a new, empty file takes it (an existing one at its next VACUUM);
+            # the writer gives freed pages back with PRAGMA incremental_vacuum on close
+            cur.execute("PRAGMA auto_vacuum=INCREMENTAL")
             cur.execute("PRAGMA journal_mode=WAL")
             cur.execute("PRAGMA synchronous=NORMAL")
             # foreign keys stay declared (PostgreSQL enforces them); SQLite checking each one

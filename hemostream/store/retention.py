@@ -36,11 +36,14 @@ class PruneReport:
     minute_stats_added: int = 0
     #: PostgreSQL: day partitions of obs_chunks dropped whole (their chunks are in removed)
     partitions_dropped: int = 0
+    #: SQLite: pages given back to the file system after the deletes
+    pages_freed: int = 0
 
     def as_dict(self) -> dict[str, Any]:
         return {"now": self.now, "dry_run": self.dry_run, "cutoffs": self.cutoffs,
                 "removed": self.removed, "minute_stats_added": self.minute_stats_added,
-                "partitions_dropped": self.partitions_dropped}
+                "partitions_dropped": self.partitions_dropped,
+                "pages_freed": self.pages_freed}
 
 
 def minute_stats(bed_id: int, blk: dict[str, Any]) -> list[dict[str, Any]]:
@@ -158,6 +161,9 @@ def prune(engine: Engine, retention: Any, now: float | None = None,
                                                       .where(cond)).scalar())
                 if not dry_run:
                     conn.execute(delete(cs).where(cond))
+    if not dry_run and engine.dialect.name == "sqlite":
+        from .writer import give_back_free_pages
+        rep.pages_freed = give_back_free_pages(engine)
     return rep
 
 
