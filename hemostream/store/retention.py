@@ -162,7 +162,7 @@ def prune(engine: Engine, retention: Any, now: float | None = None,
                 if not dry_run:
                     conn.execute(delete(cs).where(cond))
     if not dry_run and engine.dialect.name == "sqlite":
-        from .writer import give_back_free_pages
+        from .space import give_back_free_pages
         rep.pages_freed = give_back_free_pages(engine)
     return rep
 

@@ -15,7 +15,7 @@ from ..wire import PARAMS
 
 __all__ = ["STRICT", "DERIVED_PARAMS", "KNOWN_PARAMS", "Priority", "Seconds", "PosSeconds",
            "RULE_ID", "check_params", "Span", "median", "INF", "NINF", "FEED_SILENT",
-           "DEVICE_SILENT", "NOT_VALID", "ARTIFACT", "FLUID", "PROFILE"]
+           "DEVICE_SILENT", "NOT_VALID", "ARTIFACT", "FLUID", "PROFILE", "DELAY_TOLERANCE_S"]
 
 STRICT = ConfigDict(extra="forbid")
 
@@ -32,6 +32,19 @@ RULE_ID = re.compile(r"^[a-z][a-z0-9_]{0,63}$")
 
 INF = float("inf")
 NINF = float("-inf")
+
+#: A delay (condition delay, clear delay, not-valid delay, profile hold) counts as met when
+#: the time elapsed is at least the delay minus this much. Half a millisecond: times travel
+#: as RFC 3339 text and hemostream writes them to the millisecond (wire.format_epoch), so two
+#: times that read the same on the wire are never told apart by a delay; and a sender that
+#: stamps each sample with its own clock to the microsecond (a 1 Hz gateway whose sleep
+#: wakes a few tens of microseconds early or late) makes the sample due at the end of the
+#: delay fall either side of it by far less. The float arithmetic of epoch seconds (about
+#: 2.4e-7 s apart around 2026) is covered as well. An alarm is raised at most half a
+#: millisecond before its configured delay: nothing at the scale of a 1 s sample period or
+#: a clinical delay of seconds. It was 1e-9 s, finer than the spacing of the floats
+#: themselves, which left the decision to noise: half the raises waited for the next tick.
+DELAY_TOLERANCE_S = 0.0005
 
 #: rule ids of the technical conditions and the information read-outs
 FEED_SILENT = "feed_silent"

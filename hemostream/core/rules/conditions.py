@@ -5,7 +5,10 @@ it has held without a break for the rule's delay (the IEC 60601-1-8 alarm condit
 the condition *ends* when the level has been 0 for the clear delay. Maturing and ending are
 checked on every evaluation and on a timer set at the due time, so a delay also matures
 between samples (for an intermittent value) while the last evaluation is recent enough
-(``alarms.tick_maturation_max_age_s``).
+(``alarms.tick_maturation_max_age_s``). The timer fires on the bed's first message at or
+after the due time (in event time, before that message's values are evaluated) or on the
+clock tick, whichever comes first. A delay is met when the time elapsed is at least the
+delay less :data:`.common.DELAY_TOLERANCE_S` (half a millisecond: see there).
 
 Pure: no I/O, no clock.
 """
@@ -16,7 +19,7 @@ from dataclasses import dataclass
 from typing import Callable
 
 from ..alarms import Category, Priority, RuleEvent
-from .common import NINF
+from .common import DELAY_TOLERANCE_S, NINF
 from .state import BedState, Shared
 
 __all__ = ["Spec", "Cond", "Conditions"]
@@ -80,7 +83,7 @@ class Cond:
         on = self.onsets
         for k in range(len(on) - 1, 0, -1):
             s = on[k]
-            if s is not None and now - s >= delay - 1e-9:
+            if s is not None and now - s >= delay - DELAY_TOLERANCE_S:
                 return k
         return 0
 
@@ -103,9 +106,9 @@ class Conditions:
         c.details = details
         if spec.delay_s > 0:
             for k in started:
-                self.sh.schedule(t + spec.delay_s, "cond", b.key, spec.rule)
+                self.sh.schedule(t + spec.delay_s, "cond", b.key, spec.rule, b.timers)
         if level == 0 and prev_level != 0 and c.raised and spec.clear_delay_s > 0:
-            self.sh.schedule(t + spec.clear_delay_s, "cond", b.key, spec.rule)
+            self.sh.schedule(t + spec.clear_delay_s, "cond", b.key, spec.rule, b.timers)
         self.outcome(b, spec, c, t, ev)
 
     def outcome(self, b: BedState, spec: Spec, c: Cond, now: float,
@@ -119,7 +122,7 @@ class Conditions:
                                          c.details, latching=spec.latching,
                                          message=spec.message)
         elif c.raised and c.level == 0 and c.clear_since is not None \
-                and now - c.clear_since >= spec.clear_delay_s - 1e-9:
+                and now - c.clear_since >= spec.clear_delay_s - DELAY_TOLERANCE_S:
             c.raised = 0
             ev += self.sh.book.condition_ended(b.key, spec.rule, now, c.value, c.details)
 

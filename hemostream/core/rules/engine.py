@@ -18,6 +18,14 @@ Cost: per ``on_values`` call, O(1) work per new value of a trended, limited or w
 parameter, plus the pattern rules whose inputs changed; a trend slope is recomputed only when
 one of its buckets closes (see :mod:`..trends`). ``tick`` pops due timers from a heap (O(log
 n) per timer) and never scans all beds.
+
+Delay timers in event time: a bed's condition delays (onset and clear) and profile hold are
+also on the bed's own heap, and :meth:`RulesEngine.on_values` fires those its message's time
+has reached: the ones due before the message first, at their due time (the state of the
+bed's earlier messages, as a tick at that moment would see it), the ones due at the message's
+time (within :data:`.common.DELAY_TOLERANCE_S`) after its values, at its time. So the message
+that completes a delay raises the alarm itself, in replay and live alike, instead of the next
+clock tick (up to a second later); a timer fires once, from whichever heap pops it first.
 """
 
 from __future__ import annotations
@@ -27,7 +35,7 @@ from typing import Any, Mapping
 
 from ..alarms import CommandError, RuleEvent
 from .artifacts import ArtifactDetector
-from .common import ARTIFACT
+from .common import ARTIFACT, DELAY_TOLERANCE_S
 from .conditions import Conditions, Spec
 from .config import RulesConfig
 from .fluid import FluidChallenge
@@ -35,7 +43,7 @@ from .limits import Limits
 from .patterns import Patterns
 from .phrases import phrase
 from .profile import PROFILE_TEXT, Profile, classify
-from .state import BedState, Shared
+from .state import BedState, Shared, Timer
 from .technical import Technical
 from .trending import Trending
 
@@ -98,6 +106,11 @@ class RulesEngine:
             return []
         b = self._beds.get(bed) or self._bed(bed)
         ev: list[RuleEvent] = []
+        timers = b.timers
+        # the bed's delay timers due before this message fire first, at their due time, on
+        # what the bed's earlier messages showed (as a clock tick at that moment would)
+        if timers and timers[0].due < t - DELAY_TOLERANCE_S:
+            self._due(b, t - DELAY_TOLERANCE_S, None, ev)
         if t > b.last_t:
             b.last_t = t
         clock = self._sh.clock
@@ -111,6 +124,11 @@ class RulesEngine:
         self.limits.evaluate(b, t, fresh, new, excluded, ev)
         self.patterns.evaluate(b, t, fresh, new, changed, excluded, ev)
         self.profile.on_values(b, t, fresh, new, changed, excluded, ev)
+        # those due at this message's time (within the tolerance) after it: a condition this
+        # message evaluated has matured or not already; one it did not evaluate (another
+        # parameter's, an intermittent value's) matures here, not at the next clock tick
+        if timers and timers[0].due <= t + DELAY_TOLERANCE_S:
+            self._due(b, t + DELAY_TOLERANCE_S, t, ev)
         return ev
 
     def on_note(self, bed: str, t: float, kind: str, volume_ml: float | None = None,
@@ -186,27 +204,43 @@ class RulesEngine:
         if not self.cfg.enabled:
             return ev
         heap = sh.heap
-        while heap and heap[0][0] <= now:
-            _, _, kind, bed, key = heapq.heappop(heap)
-            if kind in ("escalate", "silence_end"):
-                ev += self.book.on_timer(kind, bed, key, now)
-                continue
-            b = self._beds.get(bed)
-            if b is None:
-                continue
-            if kind == "feed":
-                self.technical.feed_timer(b, key, now, ev)
-            elif kind == "device":
-                self.technical.device_timer(b, key, now, ev)
-            elif kind == "cond":
-                self.conditions.on_timer(b, key, now, ev, self._spec_for)
-            elif kind == "notvalid":
-                ev += self.technical.not_valid_alarm(b, now)
-            elif kind == "fluid":
-                ev += self.fluid.on_timer(b, key, now)
-            elif kind == "profile":
-                self.profile.on_timer(b, now, ev)
+        while heap and heap[0].due <= now:
+            tm = heapq.heappop(heap)
+            if not tm.spent:
+                tm.spent = True
+                self._fire(tm, now, ev)
         return ev
+
+    def _due(self, b: BedState, until: float, at: float | None, ev: list[RuleEvent]) -> None:
+        """Fire the bed's delay timers due at or before ``until`` (event time), each at
+        ``at``, or at its own due time when ``at`` is None."""
+        timers = b.timers
+        while timers and timers[0].due <= until:
+            tm = heapq.heappop(timers)
+            if not tm.spent:
+                tm.spent = True
+                self._fire(tm, tm.due if at is None else at, ev)
+
+    def _fire(self, tm: Timer, now: float, ev: list[RuleEvent]) -> None:
+        kind, bed, key = tm.kind, tm.bed, tm.key
+        if kind in ("escalate", "silence_end"):
+            ev += self.book.on_timer(kind, bed, key, now)
+            return
+        b = self._beds.get(bed)
+        if b is None:
+            return
+        if kind == "feed":
+            self.technical.feed_timer(b, key, now, ev)
+        elif kind == "device":
+            self.technical.device_timer(b, key, now, ev)
+        elif kind == "cond":
+            self.conditions.on_timer(b, key, now, ev, self._spec_for)
+        elif kind == "notvalid":
+            ev += self.technical.not_valid_alarm(b, now)
+        elif kind == "fluid":
+            ev += self.fluid.on_timer(b, key, now)
+        elif kind == "profile":
+            self.profile.on_timer(b, now, ev)
 
     # ================================================================== read-outs
 

@@ -11,7 +11,7 @@ from typing import Mapping
 from pydantic import BaseModel, Field, field_validator
 
 from ..alarms import RuleEvent
-from .common import PROFILE, STRICT, Seconds, Span, check_params
+from .common import DELAY_TOLERANCE_S, PROFILE, STRICT, Seconds, Span, check_params
 from .state import BedState, Shared
 from .trending import Trending
 
@@ -142,7 +142,7 @@ class Profile:
             b.cand_since = t
             b.cand_levels = levels       # levels at the start of the candidate
             if self.cfg.profile.hold_s > 0:
-                self.sh.schedule(t + self.cfg.profile.hold_s, "profile", b.key, "")
+                self.sh.schedule(t + self.cfg.profile.hold_s, "profile", b.key, "", b.timers)
                 return
         self._outcome(b, t, levels, ev)
 
@@ -161,7 +161,7 @@ class Profile:
 
     def _outcome(self, b: BedState, t: float, levels: dict | None,
                  ev: list[RuleEvent]) -> None:
-        if b.cand_since is None or t - b.cand_since < self.cfg.profile.hold_s - 1e-9:
+        if b.cand_since is None or t - b.cand_since < self.cfg.profile.hold_s - DELAY_TOLERANCE_S:
             return
         b.profile = b.cand
         b.cand = None

@@ -1,8 +1,12 @@
 """State the feature modules of the rules engine share: one :class:`BedState` per bed and
 one :class:`Shared` per engine (configuration, alarm book, timer heap, information ids).
 
-Pure: no I/O, no clock. Timers are ``(due, seq, kind, bed, key)`` tuples on a heap; ``seq``
-counts schedulings, so timers due at the same time pop in the order they were set.
+Pure: no I/O, no clock. Timers are :class:`Timer` records on a heap, ordered by ``(due,
+seq)``; ``seq`` counts schedulings, so timers due at the same time pop in the order they were
+set. A delay timer of a bed (a condition's onset or clear delay, the profile's hold) is also
+on that bed's own heap (``BedState.timers``), so that the bed's next message fires it in the
+bed's event time; whichever heap pops it first fires it and marks it spent, the other then
+drops it.
 """
 
 from __future__ import annotations
@@ -22,6 +26,24 @@ if TYPE_CHECKING:
     from .limits import Limit
 
 
+class Timer:
+    """One scheduled call-back: at ``due``, ``kind`` for ``key`` of ``bed``."""
+
+    __slots__ = ("due", "seq", "kind", "bed", "key", "spent")
+
+    def __init__(self, due: float, seq: int, kind: str, bed: str, key: str) -> None:
+        self.due = due
+        self.seq = seq
+        self.kind = kind
+        self.bed = bed
+        self.key = key
+        #: fired from one of its heaps (the other drops it)
+        self.spent = False
+
+    def __lt__(self, other: "Timer") -> bool:
+        return self.due < other.due or (self.due == other.due and self.seq < other.seq)
+
+
 class Shared:
     """The engine-wide pieces every feature module uses."""
 
@@ -29,16 +51,22 @@ class Shared:
 
     def __init__(self, cfg: "RulesConfig") -> None:
         self.cfg = cfg
-        self.heap: list[tuple[float, int, str, str, str]] = []
+        self.heap: list[Timer] = []
         self.seq = 0
         self.book = AlarmBook(cfg.alarms, self.schedule)
         #: latest clock seen by ``tick`` (event time in replay, wall clock live)
         self.clock = NINF
         self.info_count: dict[tuple[str, str], int] = {}
 
-    def schedule(self, due: float, kind: str, bed: str, key: str) -> None:
+    def schedule(self, due: float, kind: str, bed: str, key: str,
+                 local: "list[Timer] | None" = None) -> None:
+        """Call ``kind`` back at ``due`` (on the engine's clock); ``local``: the bed's own
+        heap as well, for a delay timer its next message fires (see the module docstring)."""
         self.seq += 1
-        heapq.heappush(self.heap, (due, self.seq, kind, bed, key))
+        tm = Timer(due, self.seq, kind, bed, key)
+        heapq.heappush(self.heap, tm)
+        if local is not None:
+            heapq.heappush(local, tm)
 
     def info_id(self, bed: str, rule: str) -> str:
         """Id of an information result: ``<rule>@<bed>#<n>``, n counting from 1."""
@@ -53,7 +81,8 @@ class BedState:
     __slots__ = ("key", "trends", "conds", "overrides", "limits", "art", "last_t",
                  "last_seen", "param_device", "feed_sched", "silent", "ignored",
                  "dev_last", "dev_sched", "dev_silent", "dev_ignored", "notvalid",
-                 "fc", "fc_last", "fc_meas", "fluid_until", "profile", "cand", "cand_since", "cand_levels")
+                 "fc", "fc_last", "fc_meas", "fluid_until", "profile", "cand", "cand_since",
+                 "cand_levels", "timers")
 
     def __init__(self, key: str, limits: "list[Limit]") -> None:
         self.key = key
@@ -86,3 +115,5 @@ class BedState:
         self.cand: str | None = None
         self.cand_since: float | None = None
         self.cand_levels: dict[str, float | None] = {}
+        #: engine: this bed's delay timers, fired by its messages in event time
+        self.timers: list[Timer] = []

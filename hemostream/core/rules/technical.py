@@ -23,8 +23,8 @@ from pydantic import BaseModel, Field, field_validator
 from ..alarms import Priority, RuleEvent
 from ..wire import PARAMS
 from .artifacts import ArtifactDetector
-from .common import (ARTIFACT, DEVICE_SILENT, FEED_SILENT, NINF, NOT_VALID, STRICT,
-                     PosSeconds, Seconds)
+from .common import (ARTIFACT, DELAY_TOLERANCE_S, DEVICE_SILENT, FEED_SILENT, NINF, NOT_VALID,
+                     STRICT, PosSeconds, Seconds)
 from .state import BedState, Shared
 
 __all__ = ["TechnicalConfig", "Technical"]
@@ -171,7 +171,7 @@ class Technical:
 
     def not_valid_alarm(self, b: BedState, t: float) -> list[RuleEvent]:
         after = self.cfg.technical.not_valid_after_s
-        items = sorted(p for p, (s, _) in b.notvalid.items() if t - s >= after - 1e-9)
+        items = sorted(p for p, (s, _) in b.notvalid.items() if t - s >= after - DELAY_TOLERANCE_S)
         if not items and self.sh.book.get(b.key, NOT_VALID) is None:
             return []
         return self._aggregate(
