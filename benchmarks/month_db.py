@@ -19,7 +19,9 @@ Measured, same run, whole processes: ``hemostream replay`` of a 24-bed, ``--seco
 recording (times after the 30 days) into a fresh empty database and into the 30-day one
 (each of ``--repeats`` rounds with a recording of its own, shifted in time, so nothing is a
 duplicate); the ratio is best filled / best empty (target <= 1.25). Then ``hemostream query
-observations --bed B --param HR --since (end - 24 h)`` on the 30-day database (target < 1 s).
+observations --bed B --param HR --since (end - 24 h)`` on the 30-day database (target < 1 s;
+:mod:`benchmarks.query_month` measures that query alone, several times, against the command's
+own start-up, ``hemostream --help``).
 """
 
 from __future__ import annotations

@@ -1,23 +1,28 @@
-"""Reading stored rows back: observations, derived values, rejects, notes and alarm events."""
+"""Reading stored rows back: observations, derived values, rejects, notes and alarm events.
+
+Light to import (no rich until a table is printed, no payload models): ``hemostream query``
+spends its time on the rows. :func:`output` writes observations as jsonl or csv in batches,
+a line per row from a template per bed, parameter and the like (no dict per row); the text
+is byte for byte what :func:`write` of :func:`rows` gives, which the other kinds and the
+table still use.
+"""
 
 from __future__ import annotations
 
 import csv
 import json
 import sys
-from typing import IO, Any, Iterator
+from itertools import islice
+from operator import itemgetter
+from typing import IO, Any, Callable, Iterator
 
-from rich import box
-from rich.console import Console
-from rich.table import Table
 from sqlalchemy import select
 
-from .core.wire import format_epoch as iso
-from .core.wire import parse_time
+from .core.timetext import format_epoch as iso
+from .core.timetext import format_epochs, parse_time
+from .kinds import KINDS  # noqa: F401  (re-exported)
 from .store import TABLES, config_snapshots, iter_derived, iter_observations
 
-KINDS = ("observations", "derived", "rejected", "notes", "alarms", "admissions", "commands",
-         "configs")
 
 # columns shown per kind, in order (after time, care_unit, bed)
 _COLUMNS: dict[str, tuple[str, ...]] = {
@@ -180,6 +185,10 @@ def write(rows_iter, fmt: str, stream: IO[str] = sys.stdout, console=None,
             n += 1
         return n
 
+    from rich import box
+    from rich.console import Console
+    from rich.table import Table
+
     console = console or Console()
     table = None
     cols = TABLE_COLUMNS.get(kind or "")
@@ -217,3 +226,105 @@ def _cell(v: Any) -> str:
         return s if len(s) < 80 else s[:77] + "..."
     s = str(v)
     return s if len(s) < 120 else s[:117] + "..."
+
+
+# --------------------------------------------------------------------------- fast output
+
+#: the fields of an observation row, in order (as :func:`rows` gives them)
+OBS_FIELDS = ("time", "care_unit", "bed", "param", "value", "unit", "status", "raw_value",
+              "raw_unit", "late", "quality")
+#: rows formatted at a time
+BATCH = 4096
+
+
+def output(engine, kind: str, bed: str | None = None, param: str | None = None,
+           since: float | None = None, limit: int | None = None,
+           quality: list[str] | None = None, fmt: str = "table",
+           stream: IO[str] = sys.stdout) -> int:
+    """Write the rows of ``kind`` in ``fmt`` to ``stream``, as ``write(rows(...))`` does;
+    the number of rows."""
+    if kind == "observations" and fmt in ("jsonl", "csv"):
+        batches = _observation_batches(engine, bed, param, since, limit, quality)
+        return (_obs_jsonl if fmt == "jsonl" else _obs_csv)(batches, stream)
+    return write(rows(engine, kind, bed, param, since, limit, quality), fmt, stream,
+                 kind=kind)
+
+
+def _observation_batches(engine, bed: str | None, param: str | None, since: float | None,
+                         limit: int | None, quality: list[str] | None
+                         ) -> Iterator[tuple[dict[int, tuple[str, str]], list[tuple]]]:
+    """(bed id -> (unit, bed), rows of :func:`iter_observations`), :data:`BATCH` rows at a
+    time."""
+    with engine.connect() as conn:
+        names = _bed_ids(conn, bed)
+        if not names:
+            return
+        it: Iterator[tuple] = iter_observations(conn, list(names) if bed else None,
+                                                [param] if param else None, since,
+                                                quality=quality)
+        if limit:
+            it = islice(it, limit)
+        while batch := list(islice(it, BATCH)):
+            yield names, batch
+
+
+def _numbers(enc: Callable[[Any], str], col: list) -> list[str]:
+    """Each value's JSON text, as the encoder writes it alone."""
+    if set(map(type, col)) <= {float, int}:     # one call; numbers' text has no comma
+        return enc(col)[1:-1].split(",")
+    return list(map(enc, col))
+
+
+#: the columns of an observation row (of iter_observations) that are neither the time nor
+#: a number: bed id, param, unit, status, raw unit, late, quality
+_CONSTANT = itemgetter(2, 3, 5, 6, 8, 9, 10)
+
+
+class _Templates(dict):
+    """A jsonl line's text with %s for the time and the two values, per the rest of the
+    row (bed, parameter, units, status, late, quality: few of them)."""
+
+    def __init__(self, names: dict[int, tuple[str, str]], enc: Callable[[Any], str]) -> None:
+        super().__init__()
+        self.names, self.enc = names, enc
+
+    def __missing__(self, key: tuple) -> str:
+        b, p, u, st, ru, late, q = key
+        unit, bed = self.names[b]
+        e = self.enc
+        text = ["{" + '"time":"%sZ"']
+        for k, v in (("care_unit", unit), ("bed", bed), ("param", p), ("value", None),
+                     ("unit", u), ("status", st), ("raw_value", None), ("raw_unit", ru),
+                     ("late", late), ("quality", q)):
+            text.append(f'"{k}":' + ("%s" if v is None and k in ("value", "raw_value")
+                                     else e(v).replace("%", "%%")))
+        self[key] = out = ",".join(text) + "}\n"
+        return out
+
+
+def _obs_jsonl(batches, stream: IO[str]) -> int:
+    enc = json.JSONEncoder(separators=(",", ":"), default=str).encode  # as write() has it
+    n = 0
+    templates = None
+    for names, batch in batches:
+        if templates is None:
+            templates = _Templates(names, enc)
+        times = format_epochs([r[0] for r in batch], suffix="")
+        values = _numbers(enc, [r[4] for r in batch])
+        raws = _numbers(enc, [r[7] for r in batch])
+        stream.write("".join(map(str.__mod__, map(templates.__getitem__, map(_CONSTANT, batch)),
+                                 zip(times, values, raws))))
+        n += len(batch)
+    return n
+
+
+def _obs_csv(batches, stream: IO[str]) -> int:
+    w = csv.writer(stream)          # csv.DictWriter's defaults (the excel dialect)
+    n = 0
+    for names, batch in batches:
+        if not n:
+            w.writerow(OBS_FIELDS)
+        times = format_epochs([r[0] for r in batch])
+        w.writerows([(t, *names[r[2]], *r[3:]) for t, r in zip(times, batch)])
+        n += len(batch)
+    return n

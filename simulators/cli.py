@@ -14,7 +14,6 @@ from typing import Any, Iterator, Protocol
 
 from hemostream.core.argtypes import number_above, whole_number
 
-from .scenario import format_duration
 
 __all__ = ["add_parser", "run", "main"]
 
@@ -90,7 +89,7 @@ def add_parser(subparsers: Any, publisher: Publisher | None = None, hl7: Any = N
 
 def run(args: argparse.Namespace) -> int:
     """Carry out ``simulate``; return the exit status (0 ok, 1 failed, 2 bad usage)."""
-    from .scenario import ScenarioError, list_scenarios, load_scenario
+    from .scenario import ScenarioError, format_duration, list_scenarios, load_scenario
 
     if args.list:
         infos = list_scenarios()
@@ -183,6 +182,7 @@ def run(args: argparse.Namespace) -> int:
 
 def _publish(args: argparse.Namespace, scenario: Any, duration: int,
              publisher: Publisher) -> int:
+    from .scenario import format_duration
     from .ward import dumps, generate
 
     lines: Iterator[dict] = generate(scenario, beds=args.beds, duration_s=duration,

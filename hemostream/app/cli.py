@@ -13,7 +13,6 @@ installed, ``simulate``.
 from __future__ import annotations
 
 import argparse
-import asyncio
 import json
 import logging
 import os
@@ -21,56 +20,49 @@ import signal
 import sys
 import time
 from pathlib import Path
+from typing import TYPE_CHECKING, Any
 
-from pydantic import ValidationError
-from rich.console import Console
-from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
-from rich.table import Table
-
-from .. import CAUTION, query
+from .. import CAUTION
+from ..consoles import LazyConsole
 from ..core.argtypes import number_above, whole_number
 from ..core.quality import QUALITIES
-from ..config import (check_config_file, load_for_command,
-                      with_overrides)
-from ..core.config import Config
-from ..core.redact import RedactingFilter
-from ..core.wire import ID_RE, command_body, encode, topic
-from ..live.health import status_payload
-from ..live.mqtt import BrokerSettingsError, MqttTransport, parse_broker_url
-from ..live.publish import PublishError, publish_until_stopped
-from ..live.service import Service, status_topic
-from ..live.transport import TransportError
-from ..intake.hl7 import cli as hl7_cli
-from ..intake.hl7.mllp import Hl7ServiceIntake
-from ..replay import replay_file
+from ..kinds import KINDS
 from ..review.cli import add_parsers as add_review_parsers
-from ..store import StoreError, open_engine
 from ..store.cli import add_parser as add_db_parser
-from .demo import demo_lines, run_demo
+from .scenarios import SCENARIOS
 from .status import add_parser as add_status_parser
-from .workers import run_workers
-from .watch import run_watch
+
+if TYPE_CHECKING:
+    from ..core.config import Config
+
+# Each handler imports what its command uses, on first use (``python -X importtime``): a
+# query or ``--help`` does not load the live service, rich, HL7, the simulators or the core's
+# configuration models (docs/performance.md, "The 24-hour query"). The parsers are all built
+# here from light modules, so every subcommand, option and help text stays as it was.
 
 try:
     from simulators.cli import add_parser as add_simulate_parser
-    from simulators.scenario import ScenarioError, load_scenario
-
-    from . import validate as cohort
 except ImportError:              # the simulators are a separate, optional package
     add_simulate_parser = None
 
 log = logging.getLogger("hemostream.live")
 
-err = Console(stderr=True, soft_wrap=True)
+
+#: standard error (rich, made on first use)
+err = LazyConsole(stderr=True, soft_wrap=True)
 
 
 def live_config(path: str | None) -> Config:
     """The named configuration, or the shipped default (configs/default.toml) for the live
     commands."""
+    from ..config import load_for_command
+
     return load_for_command(path, shipped_default=True)
 
 
 def setup_logging(level: str) -> None:
+    from ..core.redact import RedactingFilter
+
     logging.basicConfig(level=getattr(logging, level.upper()), stream=sys.stderr,
                         format="%(asctime)s %(levelname)s %(name)s: %(message)s")
     for h in logging.getLogger().handlers:      # no password in any line, whoever logs it
@@ -108,6 +100,14 @@ def duration(text: str) -> float:
 # --------------------------------------------------------------------------- replay, query
 
 def cmd_replay(args) -> int:
+    from rich.console import Console
+    from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
+
+    from ..config import load_for_command
+    from ..intake.hl7 import cli as hl7_cli
+    from ..replay import replay_file
+    from ..store import StoreError
+
     cfg = load_for_command(args.config)
     path = Path(args.recording)
     if not path.is_file():
@@ -119,7 +119,7 @@ def cmd_replay(args) -> int:
     show = err.is_terminal and path.stat().st_size > 2_000_000 and not args.quiet
     try:
         with Progress(TextColumn("replaying"), BarColumn(), TextColumn("{task.percentage:>3.0f}%"),
-                      TimeRemainingColumn(), console=err, disable=not show,
+                      TimeRemainingColumn(), console=err.real, disable=not show,
                       transient=True) as prog:
             task = prog.add_task("replay", total=path.stat().st_size)
             summary = replay_file(path, url, cfg, speed=args.speed,
@@ -157,8 +157,16 @@ def cmd_replay(args) -> int:
 
 
 def cmd_query(args) -> int:
-    cfg = load_for_command(args.config)
-    url = args.db or cfg.store.url
+    from .. import query
+    from ..store import open_engine
+
+    if args.db and args.config is None:     # the built-in defaults would only give store.url
+        url = args.db
+    else:
+        from ..config import load_for_command
+
+        cfg = load_for_command(args.config)     # checked even when --db overrides it
+        url = args.db or cfg.store.url
     if url.startswith("sqlite:///") and not Path(url[len("sqlite:///"):]).exists():
         err.print(f"[red]error:[/] database file {url[len('sqlite:///'):]!r} does not exist")
         return 1
@@ -179,22 +187,29 @@ def cmd_query(args) -> int:
                     f"{', '.join(QUALITIES)}" if bad else
                     "applies to observations and derived values only"), highlight=False)
                 return 2
-        n = query.write(query.rows(engine, args.kind, args.bed, args.param, since, args.limit,
-                                   quality), args.format, kind=args.kind)
-    except StoreError as e:
-        err.print(f"[red]error:[/] {e}", highlight=False)
-        return 1
+        n = query.output(engine, args.kind, args.bed, args.param, since, args.limit, quality,
+                         args.format)
     except BrokenPipeError:
         return 0
+    except Exception as e:
+        from ..store import StoreError      # the writer's; imported only when something failed
+
+        if not isinstance(e, StoreError):
+            raise
+        err.print(f"[red]error:[/] {e}", highlight=False)
+        return 1
     if args.format == "table":
         err.print(f"{n} row(s)")
-    err.print(f"CAUTION: {CAUTION}", highlight=False)   # stderr: jsonl and csv stay data
+    # stderr: jsonl and csv stay data (plain text, as the console printed it: no markup)
+    print(f"CAUTION: {CAUTION}", file=sys.stderr)
     return 0
 
 
 def broker_problems(data: dict, cfg: Config | None) -> list[str]:
     """The broker settings as ``run`` checks them: URL (scheme, host, numeric port), then
     the password source and TLS files."""
+    from ..live.mqtt import BrokerSettingsError, MqttTransport, parse_broker_url
+
     broker = data.get("broker") if isinstance(data.get("broker"), dict) else {}
     if isinstance(broker.get("url"), str):
         try:
@@ -210,6 +225,8 @@ def broker_problems(data: dict, cfg: Config | None) -> list[str]:
 
 
 def cmd_check_config(args) -> int:
+    from ..config import check_config_file
+
     bad = 0
     for f in args.files:
         problems = check_config_file(f, broker_problems)
@@ -224,6 +241,15 @@ def cmd_check_config(args) -> int:
 # --------------------------------------------------------------------------- run
 
 def cmd_run(args) -> int:
+    import asyncio
+
+    from ..config import with_overrides
+    from ..intake.hl7.mllp import Hl7ServiceIntake
+    from ..live.health import status_payload
+    from ..live.mqtt import BrokerSettingsError, MqttTransport
+    from ..live.service import Service, status_topic
+    from .workers import run_workers
+
     cfg = with_overrides(live_config(args.config), args.broker, args.db)
     setup_logging(args.log_level)
     log.info("%s", CAUTION)
@@ -259,6 +285,15 @@ def cmd_run(args) -> int:
 # --------------------------------------------------------------------------- ack
 
 def cmd_ack(args) -> int:
+    import asyncio
+
+    from pydantic import ValidationError
+
+    from ..config import with_overrides
+    from ..core.wire import ID_RE, command_body, encode, topic
+    from ..live.mqtt import BrokerSettingsError, MqttTransport
+    from ..live.transport import TransportError
+
     cfg = with_overrides(live_config(args.config), args.broker)
     unit, _, bed = args.bed.rpartition("/")
     if not unit:
@@ -338,6 +373,12 @@ def cmd_ack(args) -> int:
 # --------------------------------------------------------------------------- demo
 
 def cmd_demo(args) -> int:
+    import asyncio
+
+    from ..config import with_overrides
+    from ..live.mqtt import BrokerSettingsError, parse_broker_url
+    from .demo import demo_lines, run_demo
+
     cfg = with_overrides(live_config(args.config))
     db = args.db or "sqlite:///hemostream-demo.db"
     setup_logging("DEBUG" if args.verbose else "WARNING")
@@ -368,6 +409,11 @@ def cmd_demo(args) -> int:
 # --------------------------------------------------------------------------- watch
 
 def cmd_watch(args) -> int:
+    from ..config import load_for_command, with_overrides
+    from ..core.wire import ID_RE
+    from ..live.mqtt import BrokerSettingsError
+    from .watch import run_watch
+
     cfg = with_overrides(load_for_command(args.config), broker=args.broker)
     if not ID_RE.match(args.unit):
         print(f"error: --unit {args.unit!r}: 1-32 characters of A-Z a-z 0-9 - _",
@@ -395,6 +441,10 @@ def cmd_watch(args) -> int:
 def publish_lines(lines, url: str, speed: float | None, give_up_s: float = 120.0) -> int:
     """``simulate --publish``: stream recording lines to a broker at QoS 1 (the live shell);
     counts what the broker acknowledged and says what was not delivered."""
+    from ..live.mqtt import BrokerSettingsError, parse_broker_url
+    from ..live.publish import PublishError, publish_until_stopped
+    from ..live.transport import TransportError
+
     try:
         parse_broker_url(url)
     except BrokerSettingsError as e:
@@ -414,6 +464,15 @@ def publish_lines(lines, url: str, speed: float | None, give_up_s: float = 120.0
         return 130
     err.print(f"published to {url}: {s.words()}", highlight=False)
     return 0
+
+
+class _Hl7Commands:
+    """The HL7 intake's command module (``simulate --format hl7``), imported when used."""
+
+    def __getattr__(self, name: str) -> Any:
+        from ..intake.hl7 import cli as hl7_cli
+
+        return getattr(hl7_cli, name)
 
 
 # --------------------------------------------------------------------------- parsers
@@ -440,7 +499,7 @@ def add_store_parsers(sub) -> None:
                        "oldest first. Times are RFC 3339 UTC; values are in canonical units. "
                        "The table shows the main columns; jsonl and csv carry every field "
                        "(provenance of derived values, alarm details, rejected bytes).")
-    q.add_argument("kind", choices=query.KINDS)
+    q.add_argument("kind", choices=KINDS)
     q.add_argument("--db", metavar="URL", help="database URL (default: the config's store.url)")
     q.add_argument("--config", metavar="FILE", help="TOML configuration")
     q.add_argument("--bed", metavar="BED", help="bed id, or UNIT/BED")
@@ -566,7 +625,7 @@ def build_parser() -> argparse.ArgumentParser:
     add_db_parser(sub)
     add_status_parser(sub)
     if add_simulate_parser is not None:
-        add_simulate_parser(sub, publisher=publish_lines, hl7=hl7_cli)
+        add_simulate_parser(sub, publisher=publish_lines, hl7=_Hl7Commands())
         add_validate_parser(sub)
     return p
 
@@ -577,7 +636,6 @@ _cohort_size = whole_number(1, what="a whole number of patients")
 
 
 def add_validate_parser(sub) -> None:
-    SCENARIOS = cohort.SCENARIOS
     v = sub.add_parser(
         "validate", help="the rules on a cohort of simulated patients: sensitivity, delay, "
         "false alarms",
@@ -601,6 +659,14 @@ def add_validate_parser(sub) -> None:
 
 
 def cmd_validate(args) -> int:
+    from rich.console import Console
+    from rich.progress import BarColumn, Progress, TextColumn
+    from rich.table import Table
+    from simulators.scenario import ScenarioError, load_scenario
+
+    from ..config import load_for_command
+    from . import validate as cohort
+
     names = [s.strip() for s in args.scenarios.split(",") if s.strip()]
     for n in names:
         try:
@@ -609,7 +675,7 @@ def cmd_validate(args) -> int:
             err.print(f"[red]error:[/] --scenarios: {e}", highlight=False)
             return 2
     cfg = load_for_command(args.config)
-    with Progress(TextColumn("{task.description}"), BarColumn(), console=err,
+    with Progress(TextColumn("{task.description}"), BarColumn(), console=err.real,
                   disable=not err.is_terminal, transient=True) as prog:
         task = prog.add_task("simulating", total=len(names))
 

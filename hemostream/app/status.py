@@ -6,21 +6,18 @@ from __future__ import annotations
 import json
 from typing import Any
 
-from rich import box
-from rich.console import Console
-from rich.table import Table
-from sqlalchemy import text
-
 from ..core.redact import redact
-from ..core.wire import format_epoch
-from ..store import StoreError, open_engine
 
-out = Console(soft_wrap=True)
-err = Console(stderr=True, soft_wrap=True)
+# the store, rich and the wire format are imported by the command itself: every other
+# command builds this parser too (hemostream.app.cli)
 
 
 def read_status(url: str) -> dict[str, Any]:
     """Leases and live workers as plain data (times: epoch seconds of the database)."""
+    from sqlalchemy import text
+
+    from ..store import open_engine
+
     engine = open_engine(url, create=False)
     try:
         with engine.connect() as conn:
@@ -44,6 +41,15 @@ def _ago(now: float, t: float | None) -> str:
 
 
 def cmd_status(args) -> int:
+    from rich import box
+    from rich.console import Console
+    from rich.table import Table
+
+    from ..core.timetext import format_epoch
+    from ..store import StoreError
+
+    out = Console(soft_wrap=True)
+    err = Console(stderr=True, soft_wrap=True)
     try:
         st = read_status(args.db)
     except StoreError as e:

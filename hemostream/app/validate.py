@@ -33,6 +33,7 @@ from ..replay import replay_file
 from ..review.periods import build_periods
 from ..review.queries import alarm_rows, load_beds, notes
 from ..store import open_engine
+from .scenarios import SCENARIOS
 
 DAY_S = 86400.0
 
@@ -60,8 +61,6 @@ QUIET: dict[str, frozenset[str]] = {
     "vasodilation": frozenset({"right_heart_mismatch"}),
 }
 
-SCENARIOS = ("stable", "hemorrhage", "bolus_responder", "bolus_nonresponder", "rv_failure",
-             "lv_failure", "vasodilation")
 
 
 @dataclass

@@ -5,14 +5,14 @@ for integration engineers in ``docs/wire-format.md``; this module is its executa
 Unknown JSON fields are ignored (so the format can grow compatibly); wrong types, missing
 fields and out-of-range values are errors that name the field.
 
-Size: the whole version-1 contract (topics, time text both ways, every payload model and the
-recording line) in one module, so a reader checks it against docs/wire-format.md in one place.
+Size: the whole version-1 contract (topics, every payload model and the recording line) in
+one module, so a reader checks it against docs/wire-format.md in one place; the time text both
+ways is in :mod:`.timetext` (light, for the query command) and re-exported here.
 """
 
 from __future__ import annotations
 
 import json
-import math
 import re
 from datetime import datetime, timezone
 from typing import Annotated, Any, Literal, NamedTuple
@@ -148,87 +148,11 @@ def is_status_topic(t: Topic | None) -> bool:
 
 # --------------------------------------------------------------------------- times
 #
-# One policy for every time on the wire and on the command line (docs/wire-format.md): RFC
-# 3339 text with an explicit offset (``Z`` or ``+hh:mm``). A time without an offset is
-# rejected (ValueError with a reason), never guessed as local time or UTC. Times inside
-# hemostream are epoch seconds (float, UTC); text goes out in UTC with milliseconds and ``Z``.
+# The time policy and its functions live in timetext.py (a light module: the query command
+# formats times without importing the payload models); re-exported here.
 
-_EPOCH = datetime(1970, 1, 1, tzinfo=timezone.utc)
-
-
-def epoch(t: datetime) -> float:
-    """Seconds since 1970-01-01T00:00:00Z of an aware datetime (exact to the microsecond).
-
-    >>> epoch(datetime(2026, 12, 1, 8, 0, tzinfo=timezone.utc))
-    1796112000.0
-    """
-    if t.tzinfo is None:
-        raise ValueError(f"time {t.isoformat()!r} has no UTC offset")
-    d = t - _EPOCH
-    return d.days * 86400.0 + d.seconds + d.microseconds / 1e6
-
-
-def parse_time(text: Any, what: str = "time") -> float:
-    """Epoch seconds of RFC 3339 text with an offset; ValueError naming ``what`` otherwise.
-
-    >>> parse_time("2026-12-01T09:00:00+01:00")
-    1796112000.0
-    >>> parse_time("2026-12-01T08:00:00")
-    Traceback (most recent call last):
-    ...
-    ValueError: time '2026-12-01T08:00:00' has no UTC offset: give Z or +hh:mm, e.g. 2026-12-01T08:00:00Z
-    """
-    if not isinstance(text, str):
-        raise ValueError(f"{what} must be an RFC 3339 timestamp string such as "
-                         "2026-12-01T08:15:00Z")
-    try:
-        t = datetime.fromisoformat(text)
-    except ValueError:
-        raise ValueError(f"{what} {text[:64]!r}: expected an RFC 3339 time such as "
-                         "2026-12-01T08:00:00Z") from None
-    if t.tzinfo is None:
-        raise ValueError(f"{what} {text[:64]!r} has no UTC offset: give Z or +hh:mm, e.g. "
-                         "2026-12-01T08:00:00Z")
-    try:
-        return epoch(t)
-    except OverflowError:           # year 1 with a positive offset is before year 1 in UTC
-        raise ValueError(f"{what} {text[:64]!r} is out of range") from None
-
-
-def parse_time_or_none(text: Any) -> float | None:
-    """:func:`parse_time`, or None for anything that is not a valid wire time."""
-    try:
-        return parse_time(text)
-    except (ValueError, OverflowError):
-        return None
-
-
-def format_epoch(t: float) -> str:
-    """RFC 3339 UTC text, millisecond precision, for epoch seconds.
-
-    >>> format_epoch(1796112000.25)
-    '2026-12-01T08:00:00.250Z'
-    """
-    # datetime.fromtimestamp's own rounding (to the microsecond, half to even), then the
-    # milliseconds cut as isoformat cuts them; the whole-second text is cached (a feed
-    # formats the same second many times), so this is a dictionary look-up and an f-string
-    frac, whole = math.modf(t)
-    us = round(frac * 1e6)
-    if us >= 1_000_000:
-        whole, us = whole + 1, us - 1_000_000
-    elif us < 0:
-        whole, us = whole - 1, us + 1_000_000
-    sec = int(whole)
-    head = _SECONDS.get(sec)
-    if head is None:
-        if len(_SECONDS) >= 8192:
-            _SECONDS.clear()
-        head = _SECONDS[sec] = datetime.fromtimestamp(sec, timezone.utc).replace(
-            tzinfo=None).isoformat(timespec="seconds")
-    return f"{head}.{us // 1000:03d}Z"
-
-
-_SECONDS: dict[int, str] = {}
+from .timetext import (epoch, format_epoch, parse_time,  # noqa: E402,F401
+                       parse_time_or_none)
 
 
 # --------------------------------------------------------------------------- payloads

@@ -6,11 +6,11 @@ import argparse
 import sys
 from pathlib import Path
 
-from rich.console import Console
 
+from ..consoles import LazyConsole
 from . import CAUTION, COMPARE_CAUTION
 
-err = Console(stderr=True, soft_wrap=True)
+err = LazyConsole(stderr=True, soft_wrap=True)
 
 
 def cmd_compare(args) -> int:
@@ -48,7 +48,7 @@ def cmd_compare(args) -> int:
     try:
         with Progress(TextColumn("{task.description}"), BarColumn(),
                       TextColumn("{task.percentage:>3.0f}%"), TimeElapsedColumn(),
-                      console=err, disable=not show, transient=True) as prog:
+                      console=err.real, disable=not show, transient=True) as prog:
             tasks = [prog.add_task(f"replaying under {lab}", total=size) for lab in labels]
             result = runner.compare(
                 rec, list(args.config), ack_within_s=args.ack_within * 60.0,
@@ -74,7 +74,7 @@ def cmd_compare(args) -> int:
     elif args.format == "csv":
         sys.stdout.write(tables.to_csv(result))
     else:
-        tables.render(result, Console(soft_wrap=True))
+        tables.render(result, LazyConsole(soft_wrap=True).real)
     sys.stdout.flush()
     for f in (args.json, args.csv):
         if f:

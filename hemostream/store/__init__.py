@@ -13,12 +13,11 @@ import hashlib
 import json
 import logging
 from dataclasses import dataclass, field
-from typing import Any, Iterable
+from typing import TYPE_CHECKING, Any, Iterable
 
 from sqlalchemy import create_engine, event, func, select
 from sqlalchemy.engine import Engine
 
-from ..core.processor import OBSERVATION_COLUMNS, obs_identity, raw_digest  # noqa: F401
 from ..core.redact import redact
 from . import versions
 from .chunks import Chunker  # noqa: F401  (re-exported)
@@ -29,8 +28,37 @@ from .schema import (CHUNKED, INSERT_ORDER, TABLES, AlarmEvent, Admission, Base,
 
 log = logging.getLogger(__name__)
 
+# The writer and the core's processor (and with it the configuration and rules models) are
+# imported when first used: reading (``hemostream query``, the review) needs neither, and
+# importing them cost a tenth of a second of every query. ``from hemostream.store import
+# Writer`` works as before (module ``__getattr__``).
+_LAZY = {**dict.fromkeys(("StoreError", "RETRY_FIRST_S", "RETRY_MAX_S", "TUPLE_COLUMNS",
+                          "Writer", "chunker", "configure_chunks", "rows_of", "write_rows"),
+                         "writer"),
+         **dict.fromkeys(("OBSERVATION_COLUMNS", "obs_identity", "raw_digest"), "processor")}
 
-from .writer import StoreError  # noqa: E402
+if TYPE_CHECKING:
+    from ..core.processor import OBSERVATION_COLUMNS, obs_identity, raw_digest  # noqa: F401
+    from .writer import (RETRY_FIRST_S, RETRY_MAX_S, TUPLE_COLUMNS, StoreError,  # noqa: F401
+                         Writer, chunker, configure_chunks, rows_of, write_rows)
+
+
+def __getattr__(name: str) -> Any:
+    where = _LAZY.get(name)
+    if where is None:
+        raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+    if where == "writer":
+        from . import writer as mod
+    else:
+        from ..core import processor as mod
+    value = getattr(mod, name)
+    globals()[name] = value
+    return value
+
+
+def _store_error(text: str) -> Exception:
+    from .writer import StoreError
+    return StoreError(text)
 
 
 def open_engine(url: str, *, create: bool = True, check: bool = True) -> Engine:
@@ -43,7 +71,7 @@ def open_engine(url: str, *, create: bool = True, check: bool = True) -> Engine:
     try:
         engine = create_engine(url, **kwargs)
     except Exception as e:  # bad URL, missing driver
-        raise StoreError(redact(f"database URL {url!r}: {e}")) from None
+        raise _store_error(redact(f"database URL {url!r}: {e}")) from None
     if engine.dialect.name == "sqlite":
         @event.listens_for(engine, "connect")
         def _pragmas(dbapi_conn, _rec):  # pragma: no cover - exercised via every test
@@ -67,9 +95,9 @@ def open_engine(url: str, *, create: bool = True, check: bool = True) -> Engine:
             versions.check(engine, url)
     except versions.SchemaError as e:
         engine.dispose()
-        raise StoreError(str(e)) from None
+        raise _store_error(str(e)) from None
     except Exception as e:
-        raise StoreError(redact(f"cannot open database {url!r}: {e.__class__.__name__}: "
+        raise _store_error(redact(f"cannot open database {url!r}: {e.__class__.__name__}: "
                                 f"{str(e).splitlines()[0]}")) from None
     return engine
 
@@ -92,6 +120,8 @@ RETAINED_REJECT_BYTES = 4096
 
 def load_resume(engine: Engine, recent: int = 200_000) -> Resume:
     """Next ids, known beds, and the identities of the most recent messages (for dedup)."""
+    from ..core.processor import obs_identity, raw_digest
+
     m = TABLES["messages"]
     ch = TABLES["obs_chunks"]
     with engine.connect() as conn:
@@ -152,9 +182,6 @@ def newest_arrival(conn) -> float | None:
     return max(vals) if vals else None
 
 
-from .writer import (RETRY_FIRST_S, RETRY_MAX_S, TUPLE_COLUMNS, Writer,  # noqa: F401,E402
-                     chunker, configure_chunks, rows_of,
-                     write_rows)
 
 
 # --------------------------------------------------------------------------- configurations
@@ -175,6 +202,8 @@ def record_config(engine: Engine, cfg: Any, time: float | None = None) -> bool:
     """Store ``cfg`` as the configuration in force from ``time`` (default: the newest stored
     arrival, so it applies to what comes next; 0 for an empty database). Nothing is written
     when it equals the configuration last in force. Returns whether a row was written."""
+    from .writer import write_rows
+
     text, digest = canonical_config(cfg)
     t = TABLES["config_snapshots"]
     with engine.connect() as conn:

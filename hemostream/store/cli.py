@@ -6,12 +6,10 @@ import json
 from pathlib import Path
 from typing import Any
 
-from rich import box
-from rich.console import Console
-from rich.table import Table
+from ..consoles import LazyConsole
 
-err = Console(stderr=True, soft_wrap=True)
-out = Console(soft_wrap=True)
+err = LazyConsole(stderr=True, soft_wrap=True)
+out = LazyConsole(soft_wrap=True)
 
 
 def _url(args) -> tuple[str, Any]:
@@ -105,6 +103,9 @@ def cmd_stats(args) -> int:
     if args.json:
         print(json.dumps(s))
         return 0
+    from rich import box
+    from rich.table import Table
+
     t = Table("table", "rows", "bytes", box=box.SIMPLE_HEAD, pad_edge=False)
     for name, v in s["tables"].items():
         t.add_row(name, str(v["rows"]), "" if v["bytes"] is None else f"{v['bytes']:,}")
