@@ -17,6 +17,7 @@ import numpy as np
 from sqlalchemy import null, select, union_all
 from sqlalchemy.engine import Connection
 
+from ..core.quality import from_status
 from .chunks import decode, qualities, split_block, unpack_inputs
 from .schema import TABLES
 
@@ -135,27 +136,35 @@ def iter_observations(conn: Connection, bed_ids: Iterable[int] | None = None,
         raw = b["o_value"].copy()
         raw[b["o_conv"]] = b["o_raw"]
         t = b["o_time"]
-        q = qualities(b, "o")
-        sel = np.ones(len(t), bool)         # the asked parameters, times, qualities: arrays
+        sel = np.ones(len(t), bool)         # the asked parameters and times: arrays
         if want is not None:
             sel &= np.isin(np.array(b["o_param"], dtype=object), list(want))
         if t0 is not None:
             sel &= t >= t0
         if t1 is not None:
             sel &= t <= t1
-        if qs is not None:
-            sel &= np.isin(np.array(q, dtype=object), list(qs))
         idx = np.flatnonzero(sel)
         ks = idx.tolist()
 
         def pick(col: list) -> list:
             return [col[k] for k in ks]
 
+        # qualities of the kept rows only (a one-parameter query keeps about a tenth)
+        stored_q = b.get("o_quality")
+        q = pick(stored_q) if stored_q is not None else [
+            from_status(s) for s in pick(b["o_status"])]
+        if qs is not None:
+            keep = [i for i, x in enumerate(q) if x in qs]
+            if len(keep) < len(ks):
+                idx = idx[keep]
+                ks = idx.tolist()
+                q = [q[i] for i in keep]
+
         return list(zip(t[idx].tolist(), b["o_mid"][idx].tolist(), ks,
                         repeat(c.bed_id, len(ks)), pick(b["o_param"]),
                         b["o_value"][idx].tolist(), pick(b["o_unit"]), pick(b["o_status"]),
                         raw[idx].tolist(), pick(b["o_raw_unit"]), b["o_late"][idx].tolist(),
-                        pick(q)))
+                        q))
 
     for r in _merge_rows(_chunks(conn, bed_ids, t0, t1, "obs"), rows_of):
         yield (r[0], r[1]) + r[3:]
