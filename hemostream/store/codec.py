@@ -25,6 +25,7 @@ The whole is compressed once with zlib. A reader needs only numpy and this modul
 from __future__ import annotations
 
 import json
+import math
 import struct
 import zlib
 from typing import Any
@@ -56,11 +57,27 @@ def _undelta(a: np.ndarray) -> np.ndarray:
     return np.cumsum(a, dtype=np.int64)
 
 
+def _first_scale(v: float) -> int | None:
+    """The smallest k for which ``v`` alone passes the round trip (a lower bound for the
+    column's k: a smaller k fails for this value, so for the column), or None if none does
+    (the column's doubles are stored as bits). Plain float arithmetic, the same as numpy's
+    for one element, so the column's own check below decides as before."""
+    for k in _SCALES:
+        s = float(10 ** k)
+        x = v * s
+        if abs(x) >= 2.0 ** 53:
+            return None
+        if float(round(x)) / s == v:
+            return k
+    return None
+
+
 def _float_col(a: np.ndarray) -> tuple[dict, bytes]:
     a = np.ascontiguousarray(a, dtype=np.float64)
-    if a.size and np.all(np.isfinite(a)):
+    k0 = _first_scale(float(a[0])) if a.size and math.isfinite(a[0]) else None
+    if k0 is not None and np.all(np.isfinite(a)):
         bits = a.view(np.int64)
-        for k in _SCALES:
+        for k in _SCALES[k0:]:
             s = float(10 ** k)
             scaled = a * s
             if np.max(np.abs(scaled)) >= 2.0 ** 53:
