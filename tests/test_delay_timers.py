@@ -238,3 +238,47 @@ def test_replay_raises_at_the_completing_sample(tmp_path):
         eng.dispose()
     raised = [t for t, tr in got if tr == "raised"]
     assert raised == [t_short]
+
+
+def _lagging(high_s: int, lag: float):
+    """1 Hz samples of one bed whose messages arrive ``lag`` s after their own time (a
+    backlogged broker or network), HR high for ``high_s`` s from sample 2, then calm; the
+    clock (arrival time) ticks every half second, in arrival order, as the live service's
+    tick does. Returns [(source, event)]."""
+    eng = RulesEngine()
+    t0 = parse_time("2026-12-01T08:00:00Z")
+    out = []
+    for k in range(40):
+        t = t0 + k
+        v = HIGH if 2 <= k < 2 + high_s else CALM
+        out += [(f"msg {k}", e) for e in eng.on_values(BED, t, v, frozenset(v), {}, DEV,
+                                                        rx=t + lag)]
+        for half in (0.0, 0.5):
+            out += [(f"tick {k}", e) for e in eng.tick(t + lag + half)]
+    return t0, out
+
+
+def test_a_clock_ahead_of_the_beds_data_does_not_settle_its_delay():
+    """Arrival 7 s behind the samples' own times: by the clock the 10 s delay of a 6 s HR
+    excursion has run out before the sample that ends it has arrived. The delay is the
+    condition holding for 10 s in the bed's own time (IEC 60601-1-8, from memory), so it
+    must not raise; a 16 s excursion raises at the sample that completes 10 s."""
+    _, short = _lagging(6, 7.0)
+    assert raises(short) == []
+    t0, long = _lagging(16, 7.0)
+    got = raises(long)
+    assert [src for src, _ in got] == ["msg 12"]            # onset at sample 2, + 10 s
+    assert got[0][1].time == t0 + 12
+
+
+def test_a_lagging_bed_gone_quiet_is_settled_by_the_clock():
+    """A bed whose last sample is still in the condition, and then nothing: the clock settles
+    the delay once the bed's own time would have reached it (due + its lag)."""
+    eng = RulesEngine()
+    t0 = parse_time("2026-12-01T08:00:00Z")
+    lag = 3.0
+    for k in range(5):                                      # HR high from sample 0 to 4
+        eng.on_values(BED, t0 + k, HIGH, frozenset(HIGH), {}, DEV, rx=t0 + k + lag)
+    assert raises([("t", e) for e in eng.tick(t0 + 10 + lag - 0.1)]) == []
+    got = raises([("t", e) for e in eng.tick(t0 + 10 + lag + 0.1)])
+    assert len(got) == 1 and got[0][1].time == t0 + 10.1    # the bed's clock: tick - lag

@@ -391,10 +391,10 @@ class Processor:
         clock = t if t <= ahead else ahead
         if clock > bed.newest:
             bed.newest = clock
-        self._derive(bed, new, nonvalid, msg.device, first)
+        self._derive(bed, new, nonvalid, msg.device, first, rx)
 
     def _derive(self, bed: BedState, new: set[str], nonvalid: dict[str, str], device: str,
-                first: int = 0) -> None:
+                first: int = 0, rx: float | None = None) -> None:
         now = bed.newest
         max_age = self._max_age
         cur = {p: c for p, c in bed.latest.items() if now - c.time <= max_age[p]}
@@ -438,7 +438,8 @@ class Processor:
             try:
                 self._rule_events(self.rules.on_values(bed.key, now, fresh, frozenset(new),
                                                        nonvalid, device,
-                                                       {p: times[p] for p in new if p in times}))
+                                                       {p: times[p] for p in new if p in times},
+                                                       rx))
                 reasons = getattr(self.rules, "artifact_reasons", None)
                 if reasons is not None:
                     why = reasons(bed.key, now)

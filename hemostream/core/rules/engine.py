@@ -97,11 +97,14 @@ class RulesEngine:
 
     def on_values(self, bed: str, t: float, fresh: dict[str, float], new: frozenset[str],
                   nonvalid: dict[str, str], device: str,
-                  times: Mapping[str, float] | None = None) -> list[RuleEvent]:
+                  times: Mapping[str, float] | None = None,
+                  rx: float | None = None) -> list[RuleEvent]:
         """One accepted observation message, after derivations (see docs/rules.md).
 
         ``times``: measurement time of the new values where it differs from ``t`` (an
-        intermittent measurement is older than its message); missing names are at ``t``."""
+        intermittent measurement is older than its message); missing names are at ``t``.
+        ``rx``: its arrival on the clock ``tick`` is given (how far the bed's data lags it:
+        a tick settles the bed's delays only once its data has reached them)."""
         if not self.cfg.enabled:
             return []
         b = self._beds.get(bed) or self._bed(bed)
@@ -111,6 +114,8 @@ class RulesEngine:
         # what the bed's earlier messages showed (as a clock tick at that moment would)
         if timers and timers[0].due < t - DELAY_TOLERANCE_S:
             self._due(b, t - DELAY_TOLERANCE_S, None, ev)
+        if t >= b.last_t and rx is not None:
+            b.lag = rx - t if rx > t else 0.0
         if t > b.last_t:
             b.last_t = t
         clock = self._sh.clock
@@ -206,9 +211,28 @@ class RulesEngine:
         heap = sh.heap
         while heap and heap[0].due <= now:
             tm = heapq.heappop(heap)
-            if not tm.spent:
-                tm.spent = True
-                self._fire(tm, now, ev)
+            real = tm.orig or tm
+            if real.spent:
+                continue
+            at = now
+            if real.local:
+                # a delay runs in the bed's event time: when its messages arrive ``lag``
+                # seconds after their own time (a backlog, a slow network), the clock is
+                # ahead of what the bed has shown, and settling the delay now would judge a
+                # condition whose end is still on its way. The bed's clock reaches the due
+                # time at due + lag, unless its next message settles the delay first.
+                b = self._beds.get(real.bed)
+                lag = b.lag if b is not None else 0.0
+                if lag > DELAY_TOLERANCE_S:
+                    if real.due > now - lag:
+                        sh.seq += 1
+                        later = Timer(real.due + lag, sh.seq, real.kind, real.bed, real.key)
+                        later.orig = real
+                        heapq.heappush(heap, later)
+                        continue
+                    at = max(now - lag, real.due)
+            real.spent = True
+            self._fire(real, at, ev)
         return ev
 
     def _due(self, b: BedState, until: float, at: float | None, ev: list[RuleEvent]) -> None:

@@ -19,10 +19,12 @@ __all__ = ["RulesLayer"]
 class RulesLayer(Protocol):
     def on_values(self, bed: str, t: float, fresh: dict[str, float], new: frozenset[str],
                   nonvalid: dict[str, str], device: str,
-                  times: Mapping[str, float] | None = None) -> list[RuleEvent]:
+                  times: Mapping[str, float] | None = None,
+                  rx: float | None = None) -> list[RuleEvent]:
         """One accepted observation message after derivations: ``fresh`` the current valid
         values, ``new`` the names this message brought, ``nonvalid`` name -> status,
-        ``times`` the measurement time of new values (default: ``t``)."""
+        ``times`` the measurement time of new values (default: ``t``), ``rx`` its arrival
+        (on the clock of ``tick``)."""
         ...
 
     def on_note(self, bed: str, t: float, kind: str, volume_ml: float | None = None,

@@ -29,7 +29,7 @@ if TYPE_CHECKING:
 class Timer:
     """One scheduled call-back: at ``due``, ``kind`` for ``key`` of ``bed``."""
 
-    __slots__ = ("due", "seq", "kind", "bed", "key", "spent")
+    __slots__ = ("due", "seq", "kind", "bed", "key", "spent", "local", "orig")
 
     def __init__(self, due: float, seq: int, kind: str, bed: str, key: str) -> None:
         self.due = due
@@ -39,6 +39,10 @@ class Timer:
         self.key = key
         #: fired from one of its heaps (the other drops it)
         self.spent = False
+        #: a delay in the bed's event time (also on the bed's own heap)
+        self.local = False
+        #: a tick put this timer off (the bed's data lags the clock): the timer it stands for
+        self.orig: Timer | None = None
 
     def __lt__(self, other: "Timer") -> bool:
         return self.due < other.due or (self.due == other.due and self.seq < other.seq)
@@ -66,6 +70,7 @@ class Shared:
         tm = Timer(due, self.seq, kind, bed, key)
         heapq.heappush(self.heap, tm)
         if local is not None:
+            tm.local = True
             heapq.heappush(local, tm)
 
     def info_id(self, bed: str, rule: str) -> str:
@@ -82,7 +87,7 @@ class BedState:
                  "last_seen", "param_device", "feed_sched", "silent", "ignored",
                  "dev_last", "dev_sched", "dev_silent", "dev_ignored", "notvalid",
                  "fc", "fc_last", "fc_meas", "fluid_until", "profile", "cand", "cand_since",
-                 "cand_levels", "timers")
+                 "cand_levels", "timers", "lag")
 
     def __init__(self, key: str, limits: "list[Limit]") -> None:
         self.key = key
@@ -92,6 +97,8 @@ class BedState:
         self.limits = limits                                # limits
         self.art = ArtifactState()                          # artifacts
         self.last_t = NINF                                  # engine: newest message time
+        #: engine: how far the newest message's arrival was behind its own time (s)
+        self.lag = 0.0
         # technical: feeds, devices, values not valid
         self.last_seen: dict[str, float] = {}
         self.param_device: dict[str, str] = {}
