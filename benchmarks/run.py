@@ -103,6 +103,9 @@ def main(argv: list[str] | None = None) -> int:
                     "2000,5000 in a full run)")
     ap.add_argument("--repeats", type=int, default=0,
                     help="runs of figures 1 and 2, best taken (default: 2 full, 1 quick)")
+    ap.add_argument("--latency-rate", type=float, default=0.0,
+                    help="messages per second of the latency figure (default 2,000 in a full "
+                         "or quick run; its beds follow at 1 Hz each)")
     ap.add_argument("--keep", action="store_true", help="keep the working directory")
     ap.add_argument("--workdir", type=Path, default=None)
     a = ap.parse_args(argv)
@@ -112,6 +115,9 @@ def main(argv: list[str] | None = None) -> int:
         sz = dataclasses.replace(sz, scale_beds=beds)
     if a.repeats:
         sz = dataclasses.replace(sz, repeats=a.repeats)
+    if a.latency_rate:
+        sz = dataclasses.replace(sz, latency_rate=a.latency_rate,
+                                 latency_beds=max(10, int(a.latency_rate)))
     only = [x.strip() for x in a.only.split(",") if x.strip()] or list(FIGURES)
     unknown = [x for x in only if x not in FIGURES]
     if unknown:
