@@ -62,7 +62,7 @@ def test_sealed_chunks_hold_messages_and_query_the_same(tmp_path):
     with ea.connect() as c:
         sealed = c.execute(select(func.count()).select_from(ObsChunk.__table__)
                            .where(ObsChunk.__table__.c.sealed.is_(True))).scalar()
-    assert sealed >= 4                                 # batches of 256 lines: 2 per bed
+    assert sealed >= 2                                 # every bed's, its messages moved in
     for kind in ("observations", "derived"):
         ra, rb = list(query.rows(ea, kind)), list(query.rows(eb, kind))
         assert ra == rb and len(ra) > 0

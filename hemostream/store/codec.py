@@ -79,7 +79,8 @@ def _float_col(a: np.ndarray) -> tuple[dict, bytes]:
         bits = a.view(np.int64)
         for k in _SCALES[k0:]:
             s = float(10 ** k)
-            scaled = a * s
+            with np.errstate(over="ignore"):      # a huge value scaled: inf, caught below
+                scaled = a * s
             if np.max(np.abs(scaled)) >= 2.0 ** 53:
                 break
             ints = np.rint(scaled).astype(np.int64)

@@ -18,7 +18,8 @@ from sqlalchemy import null, select, union_all
 from sqlalchemy.engine import Connection
 
 from ..core.quality import from_status
-from .chunks import decode, qualities, split_block, unpack_inputs
+from .chunks import decode, qualities, split_block
+from .provenance import unpack_inputs
 from .schema import TABLES
 
 

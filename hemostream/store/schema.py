@@ -176,13 +176,16 @@ class ObsChunk(Base):
 
 class ObsStaging(Base):
     """A write batch's observations and derived values of every bed, packed as one block
-    (:mod:`.chunks`: the columns of a segment plus ``o_bed``/``d_bed``). The writer splits
-    the staged blocks into per-bed segments of ``obs_chunks`` every ``store.stage_messages``
-    messages or ``store.stage_s`` seconds, in one transaction, so a batch of forty beds
-    costs one encoded row rather than forty. Readers read staged rows as well."""
+    (:mod:`.chunks`: the columns of a segment plus ``o_bed``/``d_bed``), one row per group
+    of beds. The writer splits the staged blocks into per-bed segments of ``obs_chunks``
+    a group at a time, in turn (each group about every ``store.stage_messages`` messages or
+    ``store.stage_s`` seconds), so a batch of a hundred beds costs a few encoded rows rather than a
+    hundred. Readers read staged rows as well."""
 
     __tablename__ = "obs_staging"
     id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
+    #: the group of beds (bed id modulo chunks.STAGE_GROUPS, 16) whose values the row holds
+    grp: Mapped[int] = mapped_column(Integer, default=0)
     t_min: Mapped[float] = mapped_column(Float(53))
     t_max: Mapped[float] = mapped_column(Float(53))
     n_messages: Mapped[int] = mapped_column(Integer)

@@ -1,6 +1,7 @@
-"""``obs_staging``: each write batch's observations and derived values of every bed as one
-packed row, split into per-bed segments of ``obs_chunks`` a minute (or some ten thousand
-messages) at a time (hemostream/store/chunks.py). A new table only; both SQLite and
+"""``obs_staging``: each write batch's observations and derived values as one packed row
+per group of beds (``grp``: bed id modulo 16), split into per-bed segments of
+``obs_chunks`` a group at a time, in turn, each about once a minute (or per 20,000 messages;
+hemostream/store/chunks.py). A new table only; both SQLite and
 PostgreSQL (not partitioned: its rows live about a minute).
 
 Revision ID: 0007_obs_staging
@@ -21,6 +22,7 @@ def upgrade() -> None:
     op.create_table(
         "obs_staging",
         sa.Column("id", big_id, primary_key=True, autoincrement=True),
+        sa.Column("grp", sa.Integer, nullable=False),
         sa.Column("t_min", sa.Float(53), nullable=False),
         sa.Column("t_max", sa.Float(53), nullable=False),
         sa.Column("n_messages", sa.Integer, nullable=False),
