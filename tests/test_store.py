@@ -4,6 +4,7 @@ import json
 import math
 
 import numpy as np
+import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -77,7 +78,8 @@ def test_sealed_chunks_hold_messages_and_query_the_same(tmp_path):
     assert again.messages == 0 and again.duplicates == 500
 
 
-def test_staged_values_read_back_before_they_are_split(tmp_path):
+@pytest.mark.parametrize("groups", [1, 16])
+def test_staged_values_read_back_before_they_are_split(tmp_path, groups):
     """A batch is staged as one row of every bed's values: readers see staged values as
     well as segments and sealed chunks, each exactly once, the same as after the split."""
     from hemostream.replay import feed_line
@@ -92,7 +94,8 @@ def test_staged_values_read_back_before_they_are_split(tmp_path):
     want = {k: list(query.rows(open_engine(b_url, create=False), k))
             for k in ("observations", "derived")}
     engine = open_engine(f"sqlite:///{tmp_path / 'a.db'}")
-    configure_chunks(engine, messages=40, segments=8, stage_messages=100, stage_s=3600)
+    configure_chunks(engine, messages=40, segments=8, stage_messages=100, stage_s=3600,
+                     stage_groups=groups)
     proc = Processor(Config(), publish=False)
     for i, line in enumerate(lines, 1):
         feed_line(proc, line, i, 1 << 20)

@@ -109,6 +109,9 @@ class StoreConfig(BaseModel):
     #: split into per-bed segments every ``stage_messages`` messages or ``stage_s`` seconds
     stage_messages: Annotated[int, Field(gt=0)] = 20000
     stage_s: Annotated[float, Field(gt=0)] = 60.0
+    #: staged as one row per group of beds, the groups split in turn: more groups spread the
+    #: split's work (lower alarm latency tail), fewer cost less per batch (more throughput)
+    stage_groups: Annotated[int, Field(ge=1, le=64)] = 1
     retention: RetentionConfig = Field(default_factory=RetentionConfig)
     #: derived values are recomputable from the stored observations, so each (bed, value)
     #: is stored when it first appears, when it moved by more than `derived_deadband`

@@ -41,12 +41,14 @@ CHUNK_MESSAGES = 900
 CHUNK_SEGMENTS = 128
 STAGE_MESSAGES = 20000
 STAGE_S = 60.0
-#: a batch is staged as one row per group of beds (bed id modulo this), and the groups are
-#: split in turn, one every sixteenth of the staging period: the work comes in small, even
-#: parts, so the writer never holds the interpreter for a whole split at once (which delayed
-#: the service's event loop by up to a second at 1,000 beds: alarm p99 425-930 ms at 1,000
-#: msg/s; 140 ms in eighths, 87 ms in sixteenths)
-STAGE_GROUPS = 16
+#: default of [store] stage_groups: a batch is staged as one row per group of beds (bed id
+#: modulo this), and the groups are split in turn, one every 1/groups of the staging period.
+#: 1 (default): one encoded row per batch, a whole split at once, the most throughput. More
+#: groups spread the split (which holds the interpreter for about 0.5 s at 1,000 beds) at
+#: the price of one encoded row per group per batch: at 1,000 msg/s, 16 groups cut the alarm
+#: p99 from 425-930 ms to 87 ms, and at 2,000 beds cost a fifth of the broker path's rate
+#: (docs/performance.md)
+STAGE_GROUPS = 1
 #: beds sealed per write transaction at least (more while a backlog waits)
 SEALS_PER_WRITE = 4
 
@@ -200,23 +202,25 @@ class Chunker:
     """Per engine: the next derived sequence number, what is staged, each bed's unsealed
     segments, and the beds waiting to be sealed.
 
-    A write batch becomes one staged row per group of beds (:data:`STAGE_GROUPS`). Every
-    sixteenth of ``stage_messages`` staged messages or of ``stage_s`` seconds, the next group's
+    A write batch becomes one staged row per group of beds (``groups``). Every 1/groups of
+    ``stage_messages`` staged messages or of ``stage_s`` seconds, the next group's
     staged rows (in turn) become one segment per bed; a bed with ``messages`` observation messages in segments is
     queued for sealing, and each write seals a few queued beds (a ward that started at
     once does not seal every bed in one transaction)."""
 
     def __init__(self, messages: int = CHUNK_MESSAGES, segments: int = CHUNK_SEGMENTS,
-                 stage_messages: int = STAGE_MESSAGES, stage_s: float = STAGE_S) -> None:
+                 stage_messages: int = STAGE_MESSAGES, stage_s: float = STAGE_S,
+                 groups: int = STAGE_GROUPS) -> None:
         self.messages, self.segments = messages, segments
         self.stage_messages, self.stage_s = stage_messages, stage_s
+        self.groups = groups
         self.next_seq: int | None = None
         self.open: dict[int, list[int]] = {}      # bed_id -> [segments, messages] unsealed
         self.staged: int | None = None            # messages in obs_staging (as far as known)
         self.staged_since: float | None = None    # monotonic time the oldest was staged
         self.to_seal: dict[int, bool] = {}        # bed_id -> final, in the order queued
         self.next_group = 0                       # the group of beds to split next
-        self.group_staged = [0] * STAGE_GROUPS    # messages staged per group (as known)
+        self.group_staged = [0] * groups          # messages staged per group (as known)
         #: where derived sequence numbers come from: this chunker, or the engine's one that
         #: several writers of a process share (under its lock)
         self.seq_source: Chunker = self
@@ -237,19 +241,23 @@ class Chunker:
 
     def write(self, conn: Connection, obs: list[Any], der: list[Any]) -> None:
         st = TABLES["obs_staging"]
+        G = self.groups
+        if len(self.group_staged) != G:                   # configured after it was made
+            self.group_staged = [0] * G
+            self.next_group = 0
         if self.staged is None:
             for g, n in conn.execute(select(st.c.grp, func.sum(st.c.n_messages))
                                      .group_by(st.c.grp)):
-                self.group_staged[int(g) % STAGE_GROUPS] += int(n or 0)
+                self.group_staged[int(g) % G] += int(n or 0)
             self.staged = sum(self.group_staged)
             if self.staged:
                 self.staged_since = _time.monotonic()
         if obs or der:
             per: dict[int, tuple[list, list]] = {}        # the batch by group of beds
             for o in obs:
-                per.setdefault(o[1] % STAGE_GROUPS, ([], []))[0].append(o)
+                per.setdefault(o[1] % G, ([], []))[0].append(o)
             for d in der:
-                per.setdefault(d["bed_id"] % STAGE_GROUPS, ([], []))[1].append(d)
+                per.setdefault(d["bed_id"] % G, ([], []))[1].append(d)
             rows = []
             for g, (o_g, d_g) in sorted(per.items()):
                 row = staging_row(block_of(o_g, d_g, self.take_seq(conn, len(d_g)),
@@ -261,17 +269,17 @@ class Chunker:
             conn.execute(insert(st), rows)
             if self.staged_since is None:
                 self.staged_since = _time.monotonic()
-        # one group at a time, in turn, every sixteenth of the staging period: each group's
-        # rows wait about stage_messages / stage_s, and the work comes in even sixteenths
-        if self.staged and (self.staged * STAGE_GROUPS >= self.stage_messages or
-                            (_time.monotonic() - (self.staged_since or 0)) * STAGE_GROUPS
+        # one group at a time, in turn, every 1/groups of the staging period: each group's
+        # rows wait about stage_messages / stage_s, and the work comes in even parts
+        if self.staged and (self.staged * G >= self.stage_messages or
+                            (_time.monotonic() - (self.staged_since or 0)) * G
                             >= self.stage_s):
             self.staged, self.staged_since = 0, _time.monotonic()
-            for k in range(STAGE_GROUPS):            # the next group that holds anything
-                g = (self.next_group + k) % STAGE_GROUPS
+            for k in range(G):                       # the next group that holds anything
+                g = (self.next_group + k) % G
                 if self.group_staged[g]:
                     self.split(conn, g)
-                    self.next_group = (g + 1) % STAGE_GROUPS
+                    self.next_group = (g + 1) % G
                     break
         self._seal_some(conn)
 
@@ -281,12 +289,12 @@ class Chunker:
         st = TABLES["obs_staging"]
         # SKIP LOCKED (PostgreSQL): two writers splitting at once take disjoint rows
         stmt = select(st.c.id, st.c.data)
-        if group is not None:
-            stmt = stmt.where(st.c.grp == group)
+        if group is not None:        # (rows of an earlier setting of groups: by modulo)
+            stmt = stmt.where(st.c.grp % self.groups == group)
         staged = conn.execute(stmt.order_by(st.c.id).with_for_update(skip_locked=True)).all()
         if group is None:
             self.staged, self.staged_since = 0, None
-            self.group_staged = [0] * STAGE_GROUPS
+            self.group_staged = [0] * self.groups
         else:
             self.group_staged[group] = 0
         if not staged:

@@ -184,7 +184,7 @@ class ObsStaging(Base):
 
     __tablename__ = "obs_staging"
     id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
-    #: the group of beds (bed id modulo chunks.STAGE_GROUPS, 16) whose values the row holds
+    #: the group of beds (bed id modulo [store] stage_groups) whose values the row holds
     grp: Mapped[int] = mapped_column(Integer, default=0)
     t_min: Mapped[float] = mapped_column(Float(53))
     t_max: Mapped[float] = mapped_column(Float(53))

@@ -61,9 +61,12 @@ def chunker(engine: Engine) -> Chunker:
 
 
 def configure_chunks(engine: Engine, messages: int, segments: int,
-                     stage_messages: int | None = None, stage_s: float | None = None) -> None:
+                     stage_messages: int | None = None, stage_s: float | None = None,
+                     stage_groups: int | None = None) -> None:
     c = chunker(engine)
     c.messages, c.segments = messages, segments
+    if stage_groups is not None:
+        c.groups = stage_groups
     if stage_messages is not None:
         c.stage_messages = stage_messages
     if stage_s is not None:
@@ -239,11 +242,12 @@ class Writer:
         self.engine = engine
         if store_cfg is not None:
             configure_chunks(engine, store_cfg.chunk_messages, store_cfg.chunk_segments,
-                             store_cfg.stage_messages, store_cfg.stage_s)
+                             store_cfg.stage_messages, store_cfg.stage_s,
+                             store_cfg.stage_groups)
         # its own staging and sealing state: several writers of one process (the workers'
         # units) share an engine, each on its own thread
         d = chunker(engine)
-        self.chunks = Chunker(d.messages, d.segments, d.stage_messages, d.stage_s)
+        self.chunks = Chunker(d.messages, d.segments, d.stage_messages, d.stage_s, d.groups)
         self.chunks.seq_source = d
         self.q: queue.Queue = queue.Queue(max_batches)
         self.error: BaseException | None = None
