@@ -39,9 +39,9 @@ from ..core.config import Config
 from ..core.processor import Processor
 from ..core.rules.protocol import RulesLayer
 from ..core.wire import encode, format_epoch, input_filters
-from ..runtime import settle_gc
 from ..core.wire import status_topic as instance_status_topic
 from ..pipeline import make_rules
+from ..runtime import settle_gc
 from ..store import StoreError, Writer, load_resume, open_engine, record_config, rows_of
 from ..store.retention import prune as prune_store
 from .health import Health, log_line, status_payload

@@ -185,17 +185,15 @@ def decode(data: bytes, columns: Any = None) -> dict[str, Any]:
     return codec.decode(data, columns)
 
 
+_STAGING_KEYS = ("t_min", "t_max", "n_messages", "n_obs", "n_derived", "mid_max", "seq_max",
+                 "data")
+
+
 def staging_row(blk: dict[str, Any]) -> dict[str, Any]:
-    """The ``obs_staging`` row of a staged block (zlib level 1: it lives about a minute)."""
-    times = [blk[c] for c in ("o_time", "d_time") if c in blk]
-    allt = np.concatenate(times)
-    m = blk.get("o_mid", np.zeros(0, np.int64))
-    return {"t_min": float(allt.min()), "t_max": float(allt.max()),
-            "n_messages": int(len(np.unique(m))), "n_obs": len(m),
-            "n_derived": len(blk.get("d_seq", ())),
-            "mid_max": int(m.max()) if len(m) else None,
-            "seq_max": int(blk["d_seq"].max()) if "d_seq" in blk else None,
-            "data": codec.encode(blk, level=1, perm=PERM)}
+    """The ``obs_staging`` row of a staged block: a segment's row without the bed and the
+    sealed messages' columns (zlib level 1: it lives about a minute)."""
+    row = chunk_row(0, blk, False, 1)
+    return {k: row[k] for k in _STAGING_KEYS}
 
 
 class Chunker:
@@ -203,10 +201,10 @@ class Chunker:
     segments, and the beds waiting to be sealed.
 
     A write batch becomes one staged row per group of beds (``groups``). Every 1/groups of
-    ``stage_messages`` staged messages or of ``stage_s`` seconds, the next group's
-    staged rows (in turn) become one segment per bed; a bed with ``messages`` observation messages in segments is
-    queued for sealing, and each write seals a few queued beds (a ward that started at
-    once does not seal every bed in one transaction)."""
+    ``stage_messages`` staged messages or of ``stage_s`` seconds, the next group's staged
+    rows (in turn) become one segment per bed; a bed with ``messages`` observation messages
+    in segments is queued for sealing, and each write seals a few queued beds (a ward that
+    started at once does not seal every bed in one transaction)."""
 
     def __init__(self, messages: int = CHUNK_MESSAGES, segments: int = CHUNK_SEGMENTS,
                  stage_messages: int = STAGE_MESSAGES, stage_s: float = STAGE_S,
@@ -216,8 +214,8 @@ class Chunker:
         self.groups = groups
         self.next_seq: int | None = None
         self.open: dict[int, list[int]] = {}      # bed_id -> [segments, messages] unsealed
-        self.staged: int | None = None            # messages in obs_staging (as far as known)
-        self.staged_since: float | None = None    # monotonic time the oldest was staged
+        self.staged: int | None = None            # messages staged since the last split
+        self.staged_since: float | None = None    # monotonic: last split, or first staging
         self.to_seal: dict[int, bool] = {}        # bed_id -> final, in the order queued
         self.next_group = 0                       # the group of beds to split next
         self.group_staged = [0] * groups          # messages staged per group (as known)

@@ -74,22 +74,19 @@ def _chunks(conn: Connection, bed_ids: Iterable[int] | None, t0: float | None,
     snapshot: a split committing meanwhile cannot show a row twice or not at all)."""
     t, st = TABLES["obs_chunks"], TABLES["obs_staging"]
     beds = list(bed_ids) if bed_ids is not None else None
-    a = select(t.c.id, t.c.bed_id, t.c.t_min, t.c.data).where(
-        (t.c.n_obs if need == "obs" else t.c.n_derived) > 0)
-    b = select(st.c.id, null().label("bed_id"), st.c.t_min, st.c.data).where(
-        (st.c.n_obs if need == "obs" else st.c.n_derived) > 0)
+
+    def meeting(stmt, tab):             # rows with values of the kind, in the time range
+        stmt = stmt.where((tab.c.n_obs if need == "obs" else tab.c.n_derived) > 0)
+        if t0 is not None:
+            stmt = stmt.where(tab.c.t_max >= t0)
+        if t1 is not None:
+            stmt = stmt.where(tab.c.t_min <= t1)
+        return stmt
+
+    a = meeting(select(t.c.id, t.c.bed_id, t.c.t_min, t.c.data), t)
     if beds is not None:
         a = a.where(t.c.bed_id.in_(beds))
-    for q, tab in ((0, t), (1, st)):
-        cond = []
-        if t0 is not None:
-            cond.append(tab.c.t_max >= t0)
-        if t1 is not None:
-            cond.append(tab.c.t_min <= t1)
-        if q == 0:
-            a = a.where(*cond)
-        else:
-            b = b.where(*cond)
+    b = meeting(select(st.c.id, null().label("bed_id"), st.c.t_min, st.c.data), st)
     u = union_all(a, b).subquery()
     out: list[_Piece] = []
     want = set(beds) if beds is not None else None

@@ -161,7 +161,7 @@ def prune(engine: Engine, retention: Any, now: float | None = None,
                                                       .where(cond)).scalar())
                 if not dry_run:
                     conn.execute(delete(cs).where(cond))
-    if not dry_run and engine.dialect.name == "sqlite":
+    if not dry_run:
         from .space import give_back_free_pages
         rep.pages_freed = give_back_free_pages(engine)
     return rep

@@ -379,8 +379,7 @@ class Writer:
             try:       # fewer, better-compressed rows for each bed's open segments
                 with self.engine.begin() as conn:
                     self.chunks.compact_all(conn)
-                if self.engine.dialect.name == "sqlite":
-                    give_back_free_pages(self.engine)
+                give_back_free_pages(self.engine)
             except Exception as e:  # noqa: BLE001 - an optimisation only
                 log.warning("could not compact the open chunks: %s", _first_line(e))
         if self.error is not None:
